@@ -1,0 +1,169 @@
+"""Control-chart constants for any subgroup size, from their defining integrals.
+
+For a normal process with standard deviation sigma and subgroups of n readings:
+
+* ``d2`` is the mean and ``d3`` the standard deviation of the relative range W = R / sigma;
+* ``c4`` is the mean of S / sigma, S the sample standard deviation (divisor n - 1).
+
+The chart factors follow from these three (3-sigma limits):
+A2 = 3 / (d2 sqrt n), A3 = 3 / (c4 sqrt n), B3, B4 = 1 -/+ 3 sqrt(1 - c4^2) / c4 (B3 floored at 0),
+D3, D4 = 1 -/+ 3 d3 / d2 (D3 floored at 0), E2 = 3 / d2.
+
+Nothing is read from a table: d2 and d3 are integrated numerically (to about 1e-10),
+c4 comes from gamma functions. Results are cached per n.
+
+Examples:
+    >>> k = constants(5)
+    >>> round(k.d2, 4), round(k.d3, 4), round(k.c4, 4), round(k.A2, 3), round(k.D4, 3)
+    (2.3259, 0.8641, 0.94, 0.577, 2.114)
+    >>> round(constants(2).E2, 4)
+    2.6587
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import cache
+
+from scipy import integrate, special
+
+from monitor.spc.errors import ConfigError
+
+__all__ = ["ChartConstants", "c4", "constants", "d2", "d3"]
+
+_QUAD_TOL = 1e-12
+
+
+@dataclass(frozen=True, slots=True)
+class ChartConstants:
+    """The classical control-chart constants for subgroups of ``n`` readings."""
+
+    n: int
+    d2: float
+    d3: float
+    c4: float
+    A2: float
+    A3: float
+    B3: float
+    B4: float
+    D3: float
+    D4: float
+    E2: float
+
+
+def _check_n(n: int) -> None:
+    if isinstance(n, bool) or not isinstance(n, int) or n < 2:
+        raise ConfigError(f"subgroup size must be an integer of at least 2, got {n!r}")
+
+
+def _phi(x: float) -> float:
+    return float(special.ndtr(x))
+
+
+def _density(x: float) -> float:
+    return math.exp(-0.5 * x * x) / math.sqrt(2.0 * math.pi)
+
+
+@cache
+def d2(n: int) -> float:
+    """Mean of the relative range of ``n`` standard normal readings.
+
+    d2(n) = integral over x of 1 - Phi(x)^n - (1 - Phi(x))^n.
+
+    Examples:
+        >>> round(d2(2), 6)  # 2 / sqrt(pi)
+        1.128379
+    """
+    _check_n(n)
+
+    def integrand(x: float) -> float:
+        p = _phi(x)
+        return 1.0 - p**n - (1.0 - p) ** n
+
+    # The integrand is even; integrate one half.
+    value, _ = integrate.quad(
+        integrand, 0.0, math.inf, epsabs=_QUAD_TOL, epsrel=_QUAD_TOL, limit=200
+    )
+    return 2.0 * float(value)
+
+
+def _range_cdf(w: float, n: int) -> float:
+    """P(W <= w) for the relative range of n standard normal readings."""
+    if w <= 0.0:
+        return 0.0
+
+    def integrand(x: float) -> float:
+        return _density(x) * (_phi(x + w) - _phi(x)) ** (n - 1)
+
+    value, _ = integrate.quad(integrand, -math.inf, math.inf, epsabs=1e-13, epsrel=1e-12, limit=200)
+    return min(1.0, n * float(value))
+
+
+@cache
+def d3(n: int) -> float:
+    """Standard deviation of the relative range of ``n`` standard normal readings.
+
+    E[W^2] = 2 * integral over w > 0 of w * (1 - F_W(w)), with
+    F_W(w) = n * integral of phi(x) * (Phi(x + w) - Phi(x))^(n - 1) dx.
+
+    Examples:
+        >>> round(d3(2), 4)
+        0.8525
+    """
+    _check_n(n)
+    second_moment, _ = integrate.quad(
+        lambda w: w * (1.0 - _range_cdf(w, n)),
+        0.0,
+        math.inf,
+        epsabs=1e-11,
+        epsrel=1e-11,
+        limit=200,
+    )
+    variance = 2.0 * float(second_moment) - d2(n) ** 2
+    return math.sqrt(variance)
+
+
+@cache
+def c4(n: int) -> float:
+    """Mean of S / sigma for ``n`` normal readings: sqrt(2/(n-1)) Gamma(n/2) / Gamma((n-1)/2).
+
+    Examples:
+        >>> round(c4(2), 6)  # sqrt(2 / pi)
+        0.797885
+    """
+    _check_n(n)
+    log_ratio = float(special.gammaln(n / 2.0) - special.gammaln((n - 1) / 2.0))
+    return math.sqrt(2.0 / (n - 1)) * math.exp(log_ratio)
+
+
+@cache
+def constants(n: int) -> ChartConstants:
+    """All chart constants for subgroups of ``n`` readings (n >= 2), cached.
+
+    Examples:
+        >>> constants(25).c4 > constants(24).c4
+        True
+        >>> constants(1)
+        Traceback (most recent call last):
+        ...
+        monitor.spc.errors.ConfigError: subgroup size must be an integer of at least 2, got 1
+    """
+    _check_n(n)
+    mean_range, sd_range, mean_sd = d2(n), d3(n), c4(n)
+    root_n = math.sqrt(n)
+    spread_s = 3.0 * math.sqrt(1.0 - mean_sd * mean_sd) / mean_sd
+    spread_r = 3.0 * sd_range / mean_range
+    return ChartConstants(
+        n=n,
+        d2=mean_range,
+        d3=sd_range,
+        c4=mean_sd,
+        A2=3.0 / (mean_range * root_n),
+        A3=3.0 / (mean_sd * root_n),
+        B3=max(0.0, 1.0 - spread_s),
+        B4=1.0 + spread_s,
+        D3=max(0.0, 1.0 - spread_r),
+        D4=1.0 + spread_r,
+        E2=3.0 / mean_range,
+    )
