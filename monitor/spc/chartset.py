@@ -110,11 +110,7 @@ class BaselinePlan:
     max_excluded_share: float = 0.25
 
     def __post_init__(self) -> None:
-        if (
-            isinstance(self.subgroups, bool)
-            or not isinstance(self.subgroups, int)
-            or self.subgroups < 2
-        ):
+        if isinstance(self.subgroups, bool) or not isinstance(self.subgroups, int) or self.subgroups < 2:
             raise ConfigError(f"a baseline needs at least 2 subgroups, got {self.subgroups!r}")
 
 
@@ -274,9 +270,7 @@ class ChartSet:
     def __repr__(self) -> str:
         """Kinds, phase and next index."""
         kinds = [k.value for k in self.spec.kinds]
-        phase = (
-            "monitoring" if self.monitoring else f"baseline {len(self._baseline)}/{self._needed}"
-        )
+        phase = "monitoring" if self.monitoring else f"baseline {len(self._baseline)}/{self._needed}"
         return f"ChartSet({kinds}, {phase}, next_index={self._next})"
 
     @property
@@ -364,9 +358,7 @@ class ChartSet:
         rest = batch if start == 0 else batch.slice(start, len(batch))
         if not self.charts or len(rest) == 0:
             return SetResult(established=established)
-        results: list[tuple[ChartKind, BatchResult]] = [
-            (c.kind, c.update_many(rest)) for c in self.charts
-        ]
+        results: list[tuple[ChartKind, BatchResult]] = [(c.kind, c.update_many(rest)) for c in self.charts]
         self._next += len(rest)
         signals = [s for _, r in results for s in r.signals]
         signals.sort(key=lambda s: s.subgroup)  # stable: keeps kind order, then each chart's own
@@ -396,9 +388,7 @@ class ChartSet:
         estimate = get_optional_state(state, "estimate")
         chart_set.estimate = None if estimate is None else PhaseOneEstimate.from_state(estimate)
         parameters = get_optional_state(state, "parameters")
-        chart_set.parameters = (
-            None if parameters is None else ProcessParameters.from_state(parameters)
-        )
+        chart_set.parameters = None if parameters is None else ProcessParameters.from_state(parameters)
         stored = get_state_list(state, "charts")
         kinds = [get_str(s, "kind") for s in stored]
         if stored and kinds != [k.value for k in spec.kinds]:
@@ -407,9 +397,7 @@ class ChartSet:
                 f"{[k.value for k in spec.kinds]}; start the chart afresh or restore "
                 "the old configuration"
             )
-        chart_set.charts = tuple(
-            _CLASSES[k].from_state(s) for k, s in zip(spec.kinds, stored, strict=False)
-        )
+        chart_set.charts = tuple(_CLASSES[k].from_state(s) for k, s in zip(spec.kinds, stored, strict=False))
         return chart_set
 
 
@@ -423,9 +411,7 @@ def _subgroup_state(subgroup: Subgroup) -> State:
 
 
 def _subgroup_from(state: State) -> Subgroup:
-    exposures = (
-        None if state.get("exposures") is None else tuple(get_float_list(state, "exposures"))
-    )
+    exposures = None if state.get("exposures") is None else tuple(get_float_list(state, "exposures"))
     return Subgroup(
         values=tuple(get_float_list(state, "values")),
         start=get_optional_float(state, "start"),

@@ -82,9 +82,7 @@ def d2(n: int) -> float:
         return 1.0 - p**n - (1.0 - p) ** n
 
     # The integrand is even; integrate one half.
-    value, _ = integrate.quad(
-        integrand, 0.0, math.inf, epsabs=_QUAD_TOL, epsrel=_QUAD_TOL, limit=200
-    )
+    value, _ = integrate.quad(integrand, 0.0, math.inf, epsabs=_QUAD_TOL, epsrel=_QUAD_TOL, limit=200)
     return 2.0 * float(value)
 
 

@@ -105,9 +105,7 @@ class ProcessParameters:
     def require_sigma(self) -> float:
         """Sigma, or an error for charts that need it."""
         if self.sigma is None:
-            raise ConfigError(
-                "this chart needs a process sigma; give one or estimate it from a baseline"
-            )
+            raise ConfigError("this chart needs a process sigma; give one or estimate it from a baseline")
         return self.sigma
 
     def to_state(self) -> State:
@@ -117,9 +115,7 @@ class ProcessParameters:
     @classmethod
     def from_state(cls, state: State) -> Self:
         """Rebuild from :meth:`to_state`."""
-        return cls(
-            get_float(state, "mean"), get_optional_float(state, "sigma"), get_str(state, "source")
-        )
+        return cls(get_float(state, "mean"), get_optional_float(state, "sigma"), get_str(state, "source"))
 
 
 @dataclass(frozen=True, slots=True)
@@ -318,9 +314,7 @@ def phase_one(
     if m < needed:
         raise NotEnoughData("a Phase I estimate", needed=needed, have=m, unit="subgroups")
     if not 0 <= max_excluded_share < 1:
-        raise ConfigError(
-            f"max_excluded_share must be at least 0 and below 1, got {max_excluded_share!r}"
-        )
+        raise ConfigError(f"max_excluded_share must be at least 0 and below 1, got {max_excluded_share!r}")
     keep = np.ones(m, dtype=bool)
     excluded: list[Exclusion] = []
     means = row_means(batch)
@@ -347,9 +341,7 @@ def phase_one(
             if mean_out[pos]:
                 found = Exclusion(
                     first_index + pos,
-                    Statistic.MEAN
-                    if estimator is not SigmaEstimator.MOVING_RANGE
-                    else Statistic.INDIVIDUAL,
+                    Statistic.MEAN if estimator is not SigmaEstimator.MOVING_RANGE else Statistic.INDIVIDUAL,
                     float(means[pos]),
                     float(mean - half[pos]),
                     float(mean + half[pos]),
@@ -422,9 +414,7 @@ def phase_one_attribute(
         new = keep & ((rates > high) | (rates < low))
         if not new.any():
             break
-        if (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m or int(
-            (keep & ~new).sum()
-        ) < 2:
+        if (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m or int((keep & ~new).sum()) < 2:
             settled = False
             break
         excluded.extend(

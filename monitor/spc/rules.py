@@ -105,21 +105,14 @@ class Rule:
             RuleId.AVOIDING_CENTER: 2,
         }[self.id]
         name = self.id.value
-        if (
-            isinstance(self.length, bool)
-            or not isinstance(self.length, int)
-            or self.length < minimum
-        ):
-            raise ConfigError(
-                f"{name}: length must be an integer of at least {minimum}, got {self.length!r}"
-            )
+        if isinstance(self.length, bool) or not isinstance(self.length, int) or self.length < minimum:
+            raise ConfigError(f"{name}: length must be an integer of at least {minimum}, got {self.length!r}")
         if self.id in _CLUSTERS:
             if isinstance(self.count, bool) or not isinstance(self.count, int):
                 raise ConfigError(f"{name}: count must be an integer, got {self.count!r}")
             if not 1 <= self.count <= self.length:
                 raise ConfigError(
-                    f"{name}: count must be between 1 and the window ({self.length}), "
-                    f"got {self.count}"
+                    f"{name}: count must be between 1 and the window ({self.length}), got {self.count}"
                 )
         if self.id in _ZONED and not (math.isfinite(self.sigma) and self.sigma > 0):
             raise ConfigError(f"{name}: sigma must be a positive number, got {self.sigma!r}")
@@ -248,12 +241,28 @@ class RuleHit:
     subgroups: tuple[int, ...]
 
 
-def _run_lengths(flags: NDArray[np.bool_], initial: int) -> NDArray[np.int64]:
-    """Length of the run of True ending at each position, continuing ``initial`` from before."""
-    positions = np.arange(flags.shape[0], dtype=np.int64)
-    last_false = np.maximum.accumulate(np.where(flags, np.int64(-1), positions))
-    runs = positions - last_false
-    return np.where(last_false < 0, runs + initial, runs) * flags
+def _long_runs(flags: NDArray[np.bool_], initial: int, length: int) -> NDArray[np.bool_]:
+    """Where the run of True ending at each position is at least ``length`` long.
+
+    ``initial`` is the run carried in from before the array.
+    """
+    m = flags.shape[0]
+    head = np.zeros(length, dtype=np.int32)
+    carried = min(initial, length)
+    if carried:
+        head[length - carried :] = 1
+    totals = np.zeros(length + m + 1, dtype=np.int32)
+    np.cumsum(np.concatenate([head, flags.astype(np.int32)]), out=totals[1:])
+    long_enough: NDArray[np.bool_] = (totals[length + 1 :] - totals[1 : m + 1]) == length
+    return long_enough
+
+
+def _final_run(flags: NDArray[np.bool_], initial: int) -> int:
+    """Length of the run of True at the end of the array, continuing ``initial``."""
+    breaks = np.flatnonzero(~flags)
+    if breaks.shape[0] == 0:
+        return initial + int(flags.shape[0])
+    return int(flags.shape[0]) - 1 - int(breaks[-1])
 
 
 _SCHEMA = 1
@@ -282,6 +291,10 @@ class RuleSet:
         self.limit_sigma = float(limit_sigma)
         clusters = [r.length for r in self.rules if r.id in _CLUSTERS]
         self._history = max(clusters, default=1) - 1
+        enabled = {r.id for r in self.rules}
+        self._track_sides = RuleId.SAME_SIDE_RUN in enabled
+        self._track_trend = RuleId.STEADY_TREND in enabled
+        self._track_alternation = RuleId.ALTERNATING_RUN in enabled
         self._reset()
 
     def _reset(self) -> None:
@@ -311,36 +324,40 @@ class RuleSet:
 
     def update(self, z: float, *, index: int) -> list[RuleHit]:
         """Feed one standardized point; return the rules it makes fire, in rule order."""
-        last = self._last_z
-        if z > 0:
-            self._pos_run += 1
-            self._neg_run = 0
-        elif z < 0:
-            self._neg_run += 1
-            self._pos_run = 0
-        else:
-            self._pos_run = self._neg_run = 0
-        sign = 0
-        if last is not None:
-            if z > last:
-                sign = 1
-            elif z < last:
-                sign = -1
-        if sign > 0:
-            self._inc_run += 1
-            self._dec_run = 0
-        elif sign < 0:
-            self._dec_run += 1
-            self._inc_run = 0
-        else:
-            self._inc_run = self._dec_run = 0
-        if sign == 0:
-            self._alt_run = 0
-        elif self._last_sign != 0 and sign == -self._last_sign:
-            self._alt_run += 1
-        else:
-            self._alt_run = 1
-        self._last_sign = sign
+        if self._track_sides:
+            if z > 0:
+                self._pos_run += 1
+                self._neg_run = 0
+            elif z < 0:
+                self._neg_run += 1
+                self._pos_run = 0
+            else:
+                self._pos_run = self._neg_run = 0
+        if self._track_trend or self._track_alternation:
+            last = self._last_z
+            sign = 0
+            if last is not None:
+                if z > last:
+                    sign = 1
+                elif z < last:
+                    sign = -1
+            if self._track_trend:
+                if sign > 0:
+                    self._inc_run += 1
+                    self._dec_run = 0
+                elif sign < 0:
+                    self._dec_run += 1
+                    self._inc_run = 0
+                else:
+                    self._inc_run = self._dec_run = 0
+            if self._track_alternation:
+                if sign == 0:
+                    self._alt_run = 0
+                elif self._last_sign != 0 and sign == -self._last_sign:
+                    self._alt_run += 1
+                else:
+                    self._alt_run = 1
+                self._last_sign = sign
         self._last_z = z
 
         hits: list[RuleHit] = []
@@ -392,11 +409,7 @@ class RuleSet:
         else:
             self._outside_run = 0
         first = index - length + 1
-        if (
-            self._outside_run >= length
-            and self._last_pos_out >= first
-            and self._last_neg_out >= first
-        ):
+        if self._outside_run >= length and self._last_pos_out >= first and self._last_neg_out >= first:
             return RuleHit(index, rid, Side.EITHER, run)
         return None
 
@@ -407,9 +420,7 @@ class RuleSet:
             side = Side.LOWER
         else:
             return None
-        window = (
-            [*self._recent[len(self._recent) - (rule.length - 1) :], z] if rule.length > 1 else [z]
-        )
+        window = [*self._recent[len(self._recent) - (rule.length - 1) :], z] if rule.length > 1 else [z]
         first = index - len(window) + 1
         if side is Side.UPPER:
             involved = tuple(first + i for i, v in enumerate(window) if v > rule.sigma)
@@ -427,89 +438,73 @@ class RuleSet:
             return []
         index = first_index + np.arange(m, dtype=np.int64)
         found: list[tuple[int, int, RuleHit]] = []
+        positive = values > 0
 
-        positive, negative = values > 0, values < 0
-        pos_runs = _run_lengths(positive, self._pos_run)
-        neg_runs = _run_lengths(negative, self._neg_run)
+        signs = np.zeros(0, dtype=np.int8)
+        if self._track_trend or self._track_alternation:
+            previous = np.empty(m)
+            previous[1:] = values[:-1]
+            previous[0] = math.nan if self._last_z is None else self._last_z
+            signs = (values > previous).astype(np.int8) - (values < previous).astype(np.int8)
 
-        previous = np.empty(m)
-        previous[1:] = values[:-1]
-        previous[0] = math.nan if self._last_z is None else self._last_z
-        signs = np.where(values > previous, 1, np.where(values < previous, -1, 0)).astype(np.int64)
-        inc_runs = _run_lengths(signs > 0, self._inc_run)
-        dec_runs = _run_lengths(signs < 0, self._dec_run)
-        previous_signs = np.empty(m, dtype=np.int64)
-        previous_signs[1:] = signs[:-1]
-        previous_signs[0] = self._last_sign
-        continues = (signs != 0) & (previous_signs != 0) & (signs == -previous_signs)
-        alt_runs = np.where(signs != 0, _run_lengths(continues, max(self._alt_run - 1, 0)) + 1, 0)
-
-        inside_run_end = self._inside_run
-        outside_run_end = self._outside_run
-        last_pos_end, last_neg_end = self._last_pos_out, self._last_neg_out
+        def emit(where: NDArray[np.bool_], rule: Rule, order: int, side: Side) -> None:
+            length = rule.length
+            for pos in np.flatnonzero(where).tolist():
+                i = int(index[pos])
+                found.append((i, order, RuleHit(i, rule.id, side, tuple(range(i - length + 1, i + 1)))))
 
         for order, rule in enumerate(self.rules):
             rid, length = rule.id, rule.length
-
-            def emit(
-                where: NDArray[np.bool_], side: Side, rid: RuleId = rid, order: int = order
-            ) -> None:
-                for pos in np.flatnonzero(where).tolist():
-                    i = int(index[pos])
-                    run = tuple(range(i - length + 1, i + 1))  # noqa: B023 - length is the loop's rule
-                    found.append((i, order, RuleHit(i, rid, side, run)))
-
             if rid is RuleId.BEYOND_LIMITS:
-                for pos in np.flatnonzero(
-                    (values > self.limit_sigma) | (values < -self.limit_sigma)
-                ).tolist():
+                beyond = (values > self.limit_sigma) | (values < -self.limit_sigma)
+                for pos in np.flatnonzero(beyond).tolist():
                     i = int(index[pos])
                     side = Side.UPPER if values[pos] > 0 else Side.LOWER
                     found.append((i, order, RuleHit(i, rid, side, (i,))))
             elif rid in _CLUSTERS:
-                found.extend(
-                    (h.index, order, h) for h in self._scan_cluster(rule, values, first_index)
-                )
+                found.extend((h.index, order, h) for h in self._scan_cluster(rule, values, first_index))
             elif rid is RuleId.SAME_SIDE_RUN:
-                emit(pos_runs >= length, Side.UPPER)
-                emit(neg_runs >= length, Side.LOWER)
+                emit(_long_runs(positive, self._pos_run, length), rule, order, Side.UPPER)
+                emit(_long_runs(values < 0, self._neg_run, length), rule, order, Side.LOWER)
             elif rid is RuleId.STEADY_TREND:
-                emit(inc_runs >= length - 1, Side.UPPER)
-                emit(dec_runs >= length - 1, Side.LOWER)
+                emit(_long_runs(signs > 0, self._inc_run, length - 1), rule, order, Side.UPPER)
+                emit(_long_runs(signs < 0, self._dec_run, length - 1), rule, order, Side.LOWER)
             elif rid is RuleId.ALTERNATING_RUN:
-                emit(alt_runs >= length - 1, Side.EITHER)
+                previous_signs = np.empty(m, dtype=np.int8)
+                previous_signs[1:] = signs[:-1]
+                previous_signs[0] = self._last_sign
+                continues = (signs != 0) & (signs == -previous_signs)
+                carried = max(self._alt_run - 1, 0)
+                emit(_long_runs(continues, carried, length - 2), rule, order, Side.EITHER)
+                self._alt_run = 0 if signs[-1] == 0 else _final_run(continues, carried) + 1
+                self._last_sign = int(signs[-1])
             elif rid is RuleId.HUGGING_CENTER:
-                inside = _run_lengths(np.abs(values) < rule.sigma, self._inside_run)
-                inside_run_end = int(inside[-1])
-                emit(inside >= length, Side.EITHER)
+                inside = np.abs(values) < rule.sigma
+                emit(_long_runs(inside, self._inside_run, length), rule, order, Side.EITHER)
+                self._inside_run = _final_run(inside, self._inside_run)
             else:  # AVOIDING_CENTER
                 out = np.abs(values) > rule.sigma
-                outside = _run_lengths(out, self._outside_run)
-                last_pos = np.maximum.accumulate(
-                    np.where(out & positive, index, self._last_pos_out)
-                )
-                last_neg = np.maximum.accumulate(
-                    np.where(out & ~positive, index, self._last_neg_out)
-                )
+                last_pos = np.maximum.accumulate(np.where(out & positive, index, self._last_pos_out))
+                last_neg = np.maximum.accumulate(np.where(out & ~positive, index, self._last_neg_out))
                 first = index - length + 1
-                emit((outside >= length) & (last_pos >= first) & (last_neg >= first), Side.EITHER)
-                outside_run_end = int(outside[-1])
-                last_pos_end, last_neg_end = int(last_pos[-1]), int(last_neg[-1])
+                both = (last_pos >= first) & (last_neg >= first)
+                emit(_long_runs(out, self._outside_run, length) & both, rule, order, Side.EITHER)
+                self._outside_run = _final_run(out, self._outside_run)
+                self._last_pos_out, self._last_neg_out = int(last_pos[-1]), int(last_neg[-1])
 
-        self._pos_run, self._neg_run = int(pos_runs[-1]), int(neg_runs[-1])
-        self._inc_run, self._dec_run = int(inc_runs[-1]), int(dec_runs[-1])
-        self._alt_run, self._last_sign = int(alt_runs[-1]), int(signs[-1])
-        self._inside_run, self._outside_run = inside_run_end, outside_run_end
-        self._last_pos_out, self._last_neg_out = last_pos_end, last_neg_end
+        if self._track_sides:
+            self._pos_run = _final_run(positive, self._pos_run)
+            self._neg_run = _final_run(values < 0, self._neg_run)
+        if self._track_trend:
+            self._inc_run = _final_run(signs > 0, self._inc_run)
+            self._dec_run = _final_run(signs < 0, self._dec_run)
         self._last_z = float(values[-1])
         if self._history:
             self._recent = [*self._recent, *values[-self._history :].tolist()][-self._history :]
         found.sort(key=lambda item: (item[0], item[1]))
         return [hit for _, _, hit in found]
 
-    def _scan_cluster(
-        self, rule: Rule, values: NDArray[np.float64], first_index: int
-    ) -> list[RuleHit]:
+    def _scan_cluster(self, rule: Rule, values: NDArray[np.float64], first_index: int) -> list[RuleHit]:
         carried = self._recent[len(self._recent) - (rule.length - 1) :] if rule.length > 1 else []
         joined = np.concatenate([np.asarray(carried, dtype=np.float64), values])
         offset = len(carried)

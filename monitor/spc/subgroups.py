@@ -149,9 +149,7 @@ class SubgroupBatch:
 
     def __post_init__(self) -> None:
         if self.values.ndim != 2:
-            raise ReadingError(
-                f"batch values must be 2-D (subgroups x readings), got {self.values.ndim}-D"
-            )
+            raise ReadingError(f"batch values must be 2-D (subgroups x readings), got {self.values.ndim}-D")
         rows, width = self.values.shape
         if self.sizes.shape != (rows,):
             raise ReadingError(f"batch has {rows} rows but {self.sizes.shape[0]} sizes")
@@ -197,19 +195,14 @@ class SubgroupBatch:
         size_array = np.asarray(sizes, dtype=np.int64)
         if int(size_array.sum()) != flat_values.shape[0]:
             raise ReadingError(
-                f"sizes add up to {int(size_array.sum())} but "
-                f"{flat_values.shape[0]} readings were given"
+                f"sizes add up to {int(size_array.sum())} but {flat_values.shape[0]} readings were given"
             )
         width = int(size_array.max()) if size_array.size else 1
         values = _pad(flat_values, size_array, width)
         padded_exposures = None
         if exposures is not None:
-            padded_exposures = _pad(
-                np.asarray(exposures, dtype=np.float64), size_array, width, fill=1.0
-            )
-        return cls(
-            values=values, sizes=size_array, start=start, end=end, exposures=padded_exposures
-        )
+            padded_exposures = _pad(np.asarray(exposures, dtype=np.float64), size_array, width, fill=1.0)
+        return cls(values=values, sizes=size_array, start=start, end=end, exposures=padded_exposures)
 
     @classmethod
     def from_subgroups(cls, subgroups: Sequence[Subgroup]) -> SubgroupBatch:

@@ -120,9 +120,7 @@ def rules_state(rules: Sequence[Rule]) -> list[JSONValue]:
     return [r.to_state() for r in rules]
 
 
-def require_sizes(
-    kind: ChartKind, sizes: Iterable[int], *, minimum: int, maximum: int | None = None
-) -> None:
+def require_sizes(kind: ChartKind, sizes: Iterable[int], *, minimum: int, maximum: int | None = None) -> None:
     """Refuse subgroups a chart cannot plot, naming the chart and the sizes allowed."""
     for n in sizes:
         if n < minimum or (maximum is not None and n > maximum):
@@ -186,9 +184,12 @@ def make_trace(
     shape = value.shape
 
     def full(x: NDArray[np.float64] | float | None) -> NDArray[np.float64]:
+        # constants become read-only broadcast views: no memory per point
         if x is None:
-            return np.full(shape, np.nan)
-        return np.broadcast_to(np.asarray(x, dtype=np.float64), shape).copy()
+            return np.broadcast_to(np.float64(np.nan), shape)
+        if isinstance(x, float | int):
+            return np.broadcast_to(np.float64(x), shape)
+        return x
 
     return Trace(statistic, index, sizes, value, full(center), full(lower), full(upper))
 
@@ -227,9 +228,7 @@ def signals_from_hits(
 def ordered(*panels: list[tuple[int, Signal]]) -> list[Signal]:
     """Signals of several panels in the streaming order: by subgroup, then panel, then rule."""
     keyed = [
-        (pos, panel, order, s)
-        for panel, items in enumerate(panels)
-        for order, (pos, s) in enumerate(items)
+        (pos, panel, order, s) for panel, items in enumerate(panels) for order, (pos, s) in enumerate(items)
     ]
     keyed.sort(key=lambda item: (item[0], item[1], item[2]))
     return [s for _, _, _, s in keyed]

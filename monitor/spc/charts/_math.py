@@ -83,12 +83,16 @@ def row_ranges(batch: SubgroupBatch) -> NDArray[np.float64]:
         return cached
     values = batch.values
     if batch.uniform:
-        ranges = values.max(axis=1) - values.min(axis=1)
+        # column by column: much faster than a reduction along short rows
+        high = values[:, 0].copy()
+        low = values[:, 0].copy()
+        for column in range(1, values.shape[1]):
+            np.maximum(high, values[:, column], out=high)
+            np.minimum(low, values[:, column], out=low)
+        ranges = high - low
     else:
         mask = batch.mask
-        ranges = np.where(mask, values, -np.inf).max(axis=1) - np.where(mask, values, np.inf).min(
-            axis=1
-        )
+        ranges = np.where(mask, values, -np.inf).max(axis=1) - np.where(mask, values, np.inf).min(axis=1)
     return batch.remember("range", ranges)
 
 

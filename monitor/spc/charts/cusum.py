@@ -117,9 +117,7 @@ class CusumChart(ChartBase):
         self.h = check_positive("h", h)
         self.head_start = check_finite("head_start", head_start)
         if not 0 <= self.head_start < self.h:
-            raise ConfigError(
-                f"head_start must be at least 0 and below h ({self.h}), got {head_start!r}"
-            )
+            raise ConfigError(f"head_start must be at least 0 and below h ({self.h}), got {head_start!r}")
         self._upper = _Side(self.head_start, first_index - 1)
         self._lower = _Side(self.head_start, first_index - 1)
         self._seen = 0
@@ -224,9 +222,7 @@ class CusumChart(ChartBase):
         )
         return BatchResult(signals=ordered(*found), traces=traces)
 
-    def _signals_over(
-        self, trace: Trace, side: Side, zeros: NDArray[np.int64]
-    ) -> list[tuple[int, Signal]]:
+    def _signals_over(self, trace: Trace, side: Side, zeros: NDArray[np.int64]) -> list[tuple[int, Signal]]:
         return [
             (pos, self._signal(trace.point(pos), side, int(zeros[pos]) + 1))
             for pos in np.flatnonzero(trace.value > self.h).tolist()

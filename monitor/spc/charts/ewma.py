@@ -139,9 +139,7 @@ class EwmaChart(ChartBase):
         variance = self._input_scale / n + self._keep_squared * self._variance
         sd = math.sqrt(variance)
         half = (self.width * self._factor(self._seen + 1)) * sd
-        point = Point(
-            Statistic.EWMA, index, n, value, self.mean, self.mean - half, self.mean + half
-        )
+        point = Point(Statistic.EWMA, index, n, value, self.mean, self.mean - half, self.mean + half)
         self._value, self._variance = value, variance
         self._seen += 1
         self._next = index + 1

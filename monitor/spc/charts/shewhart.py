@@ -112,9 +112,7 @@ class _MeanAndSpread(ChartBase):
         se = self.sigma / math.sqrt(n)
         half = self.limit_sigma * se
         z = (xbar - self.mean) / se
-        location = Point(
-            Statistic.MEAN, index, n, xbar, self.mean, self.mean - half, self.mean + half
-        )
+        location = Point(Statistic.MEAN, index, n, xbar, self.mean, self.mean - half, self.mean + half)
         factors = self._factors(n)
         spread = Point(
             self.spread,
@@ -320,9 +318,7 @@ class IndividualsChart(ChartBase):
 
     def __repr__(self) -> str:
         """Class, parameters and next index."""
-        return (
-            f"IndividualsChart(mean={self.mean!r}, sigma={self.sigma!r}, next_index={self._next})"
-        )
+        return f"IndividualsChart(mean={self.mean!r}, sigma={self.sigma!r}, next_index={self._next})"
 
     def update(self, subgroup: Subgroup) -> list[Signal]:
         """Add one reading; return its signals: individuals panel first, then moving range."""
@@ -331,9 +327,7 @@ class IndividualsChart(ChartBase):
         x = subgroup.values[0]
         half = self.limit_sigma * self.sigma
         z = (x - self.mean) / self.sigma
-        point = Point(
-            Statistic.INDIVIDUAL, index, 1, x, self.mean, self.mean - half, self.mean + half
-        )
+        point = Point(Statistic.INDIVIDUAL, index, 1, x, self.mean, self.mean - half, self.mean + half)
         signals = [
             signal_from_hit(self.kind, Statistic.INDIVIDUAL, hit, point, z)
             for hit in self._rule_set.update(z, index=index)
@@ -366,9 +360,7 @@ class IndividualsChart(ChartBase):
         m = len(batch)
         if m == 0:
             return BatchResult()
-        require_sizes(
-            self.kind, (int(batch.sizes.min()), int(batch.sizes.max())), minimum=1, maximum=1
-        )
+        require_sizes(self.kind, (int(batch.sizes.min()), int(batch.sizes.max())), minimum=1, maximum=1)
         first = self._next
         index = index_range(first, m)
         x = batch.values[:, 0]
@@ -380,9 +372,7 @@ class IndividualsChart(ChartBase):
         )
         span = self.moving_range_span
         joined = np.concatenate([np.asarray(self._recent, dtype=np.float64), x])
-        windows = (
-            sliding_window_view(joined, span) if joined.shape[0] >= span else np.empty((0, span))
-        )
+        windows = sliding_window_view(joined, span) if joined.shape[0] >= span else np.empty((0, span))
         moving_values = windows.max(axis=1) - windows.min(axis=1)
         moving_index = index[m - moving_values.shape[0] :]
         factors = range_limits(span, self.limit_sigma)
@@ -397,8 +387,7 @@ class IndividualsChart(ChartBase):
         )
         hits = self._rule_set.scan(z, first_index=first)
         moving_signals = [
-            (int(moving_index[pos]) - first, s)
-            for pos, s in limit_signals_from_trace(self.kind, moving)
+            (int(moving_index[pos]) - first, s) for pos, s in limit_signals_from_trace(self.kind, moving)
         ]
         signals = ordered(
             signals_from_hits(self.kind, Statistic.INDIVIDUAL, hits, individuals, z, first),

@@ -1,0 +1,223 @@
+"""The ``monitor`` command line.
+
+Examples (see ``monitor COMMAND --help`` for each)::
+
+    monitor check --config config/demo.yaml
+    monitor replay --config config/demo.yaml --data readings.csv --out signals.jsonl
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from typing import IO
+
+from monitor.config import ChartConfig, Config, ConfigProblems, load_config
+from monitor.replay import DataError, ReplaySummary, replay
+from monitor.spc import ChartKind, MonitorError, constants
+
+__all__ = ["ADVISORY", "main"]
+
+ADVISORY = (
+    "Advisory only: this is statistical evidence for people, not a safety system. No interlock, "
+    "trip or shutdown may depend on it; follow local codes and licensed practice."
+)
+
+EXIT_OK, EXIT_PROBLEM, EXIT_USAGE = 0, 1, 2
+
+
+def _load(path: str) -> Config:
+    return load_config(Path(path))
+
+
+# ---------------------------------------------------------------- check
+
+
+def _describe_limits(chart: ChartConfig) -> str:
+    limits = chart.limits
+    if limits.baseline is not None:
+        b = limits.baseline
+        estimator = b.sigma_from.value if b.sigma_from else "the usual estimator for the kinds"
+        exclusion = "with" if b.exclude_out_of_control else "without"
+        return (
+            f"from a baseline of the first {b.subgroups} subgroups "
+            f"(sigma from {estimator}, {exclusion} exclusion)"
+        )
+    if chart.kinds[0] is ChartKind.P:
+        return f"standard proportion p0 = {limits.proportion:g}"
+    if chart.kinds[0] is ChartKind.U:
+        return f"standard rate u0 = {limits.rate:g}"
+    mean, sigma = limits.mean or 0.0, limits.sigma or 0.0
+    text = f"standard values mean = {mean:g}, sigma = {sigma:g}"
+    n = chart.subgroup.size
+    if n is not None:
+        half = chart.limit_sigma * sigma / n**0.5
+        name = "individuals" if n == 1 else f"means of {n}"
+        text += f"; {name}: {mean - half:.6g} to {mean + half:.6g}"
+        if n >= 2 and ChartKind.XBAR_R in chart.kinds:
+            k = constants(n)
+            text += f"; ranges below {(k.d2 + chart.limit_sigma * k.d3) * sigma:.6g}"
+    return text
+
+
+def _check_summary(config: Config) -> list[dict[str, str | list[str] | None]]:
+    out: list[dict[str, str | list[str] | None]] = []
+    for chart in config.charts:
+        sub = chart.subgroup
+        grouping = (
+            f"{sub.size} reading{'s' if sub.size != 1 else ''}"
+            if sub.size is not None
+            else f"{sub.window:g} s windows (at least {sub.min_size})"
+        )
+        out.append(
+            {
+                "id": chart.id,
+                "topic": chart.topic,
+                "subgroup": grouping,
+                "kinds": [k.value for k in chart.kinds],
+                "limits": _describe_limits(chart),
+                "rules": [r.id.value for r in chart.rule_objects()],
+            }
+        )
+    return out
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    """Validate a configuration and describe each chart."""
+    config = _load(args.config)
+    summary = _check_summary(config)
+    if args.json:
+        print(json.dumps({"valid": True, "charts": summary, "advisory": ADVISORY}, indent=2))
+        return EXIT_OK
+    print(f"{args.config}: valid, {len(summary)} chart(s)")
+    for item in summary:
+        print(f"\n{item['id']}" + (f"  (topic {item['topic']})" if item["topic"] else ""))
+        print(f"  subgroups: {item['subgroup']}")
+        print(f"  kinds:     {', '.join(item['kinds'] or [])}")
+        print(f"  limits:    {item['limits']}")
+        print(f"  rules:     {', '.join(item['rules'] or [])}")
+    print(f"\n{ADVISORY}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------- replay
+
+
+def _print_summary(summary: ReplaySummary, stream: IO[str]) -> None:
+    for chart in summary.charts:
+        print(f"{chart.chart}: {chart.readings} readings, {chart.subgroups} subgroups", file=stream)
+        if chart.pending:
+            print(
+                f"  {chart.pending} readings at the end did not fill a subgroup (pending)",
+                file=stream,
+            )
+        if chart.late or chart.short_windows:
+            print(
+                f"  {chart.late} late readings dropped; {chart.short_windows} windows "
+                f"({chart.short_readings} readings) too short to chart",
+                file=stream,
+            )
+        if chart.estimate is not None:
+            e = chart.estimate
+            sigma = "" if e.parameters.sigma is None else f", sigma {e.parameters.sigma:.6g}"
+            print(
+                f"  baseline: {e.used} of {e.subgroups} subgroups used, mean {e.parameters.mean:.6g}{sigma}"
+                f" ({e.estimator}); excluded {[x.subgroup for x in e.excluded] or 'none'}",
+                file=stream,
+            )
+        elif chart.monitoring_from is None:
+            print("  still collecting its baseline: not enough subgroups to set limits", file=stream)
+        if not chart.signals:
+            print("  no signals", file=stream)
+        for (kind, statistic, rule), count in sorted(chart.signals.items()):
+            print(f"  {count:6d}  {rule} on {statistic} ({kind})", file=stream)
+    if summary.rows_skipped:
+        print(f"{summary.rows_skipped} rows skipped:", file=stream)
+        for problem in summary.problems:
+            print(f"  line {problem.line}: {problem.reason}", file=stream)
+        if summary.rows_skipped > len(summary.problems):
+            print(f"  ... and {summary.rows_skipped - len(summary.problems)} more", file=stream)
+    if summary.unrouted:
+        print(f"{summary.unrouted} rows matched no configured chart", file=stream)
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    """Replay a file of readings through the configured charts."""
+    config = _load(args.config)
+    if args.out:
+        out_path = Path(args.out)
+        out_path.parent.mkdir(parents=True, exist_ok=True)
+        with out_path.open("wb") as out:
+            summary = replay(config, args.data, out, points=not args.signals_only)
+    else:
+        summary = replay(config, args.data, sys.stdout.buffer, points=not args.signals_only)
+        sys.stdout.flush()
+    _print_summary(summary, sys.stderr)
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------- entry point
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``monitor`` command."""
+    parser = argparse.ArgumentParser(
+        prog="monitor",
+        description="Streaming statistical process monitoring for factory lines. " + ADVISORY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    check = commands.add_parser(
+        "check",
+        help="validate a configuration and describe its charts",
+        description="Validate a configuration file; every mistake is reported as file:line: field: problem.",
+        epilog="example:\n  monitor check --config config/demo.yaml",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    check.add_argument("--config", required=True, help="YAML configuration file")
+    check.add_argument("--json", action="store_true", help="print the description as JSON")
+    check.set_defaults(run=cmd_check)
+
+    rep = commands.add_parser(
+        "replay",
+        help="run the charts over a CSV or Parquet file of past readings",
+        description=(
+            "Run the configured charts over a file of readings (columns: chart or topic, timestamp, "
+            "value[, exposure]) with the same engine as the daemon. Writes one JSON line per "
+            "plotted point, signal or baseline; a summary goes to standard error."
+        ),
+        epilog=(
+            "example:\n  monitor replay --config config/demo.yaml --data readings.csv --out signals.jsonl"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    rep.add_argument("--config", required=True, help="YAML configuration file")
+    rep.add_argument("--data", required=True, help="CSV or Parquet file of readings")
+    rep.add_argument("--out", help="write the JSON lines here instead of standard output")
+    rep.add_argument("--signals-only", action="store_true", help="leave out the plotted points")
+    rep.set_defaults(run=cmd_replay)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit status (0 ok, 1 bad input, 2 usage)."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.run(args))
+    except ConfigProblems as exc:
+        print(str(exc), file=sys.stderr)
+        return EXIT_PROBLEM
+    except (DataError, MonitorError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_PROBLEM
+    except BrokenPipeError:
+        return EXIT_OK
+
+
+if __name__ == "__main__":
+    sys.exit(main())

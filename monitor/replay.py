@@ -1,0 +1,460 @@
+"""Offline replay: run the configured charts over a file of past readings with the daemon's engine.
+
+The file is CSV or Parquet with one reading per row and the columns
+
+* ``chart`` (a chart id) or ``topic`` (matched against the charts' topic filters; one topic
+  may feed several charts),
+* ``timestamp`` (ISO 8601, UTC unless an offset is given, or seconds since the epoch),
+* ``value`` (the reading; for p and u charts the count of rejects or defects),
+* optionally ``exposure`` (units inspected for that count).
+
+Rows are taken in file order per chart. Readings form subgroups exactly as in the daemon
+(count, or clock-aligned windows with the configured lateness); each chart set then runs its
+vectorised batch path. The output is one JSON line per plotted point, signal or baseline.
+Rows that cannot be used are reported with their line numbers and skipped; nothing else is
+dropped silently (incomplete subgroups at the end are reported as pending).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import IO
+
+import numpy as np
+import orjson
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+from numpy.typing import NDArray
+
+from monitor.config import ChartConfig, Config
+from monitor.spc import (
+    ChartSet,
+    PhaseOneEstimate,
+    Reading,
+    ReadingError,
+    SetResult,
+    Signal,
+    Subgroup,
+    SubgroupBatch,
+    WindowSubgrouper,
+)
+from monitor.topics import matches
+
+__all__ = ["ChartReplay", "DataError", "ReadingTable", "ReplaySummary", "read_table", "replay"]
+
+_MAX_LISTED = 20
+
+
+class DataError(ReadingError):
+    """The data file cannot be replayed at all (missing, unreadable, wrong columns)."""
+
+
+@dataclass(frozen=True, slots=True)
+class RowProblem:
+    """A row of the data file that was skipped, and why."""
+
+    line: int
+    reason: str
+
+
+@dataclass(frozen=True, eq=False)
+class ReadingTable:
+    """Readings of a data file as arrays, rows in file order."""
+
+    key_column: str
+    keys: list[str]
+    key_index: NDArray[np.int64]
+    times: NDArray[np.float64]
+    values: NDArray[np.float64]
+    exposures: NDArray[np.float64] | None
+    lines: NDArray[np.int64]
+    problems: list[RowProblem] = field(default_factory=list)
+    problem_count: int = 0
+
+
+def _load_arrow(path: Path) -> tuple[pa.Table, int]:
+    """The file as an Arrow table, and the number of the line holding its first row."""
+    if not path.exists():
+        raise DataError(f"{path}: no such file")
+    try:
+        if path.suffix.lower() in (".parquet", ".pq"):
+            return pq.read_table(path), 1
+        convert = pacsv.ConvertOptions(
+            column_types={"chart": pa.string(), "topic": pa.string()}, strings_can_be_null=False
+        )
+        return pacsv.read_csv(path, convert_options=convert), 2
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise DataError(
+            f"{path}: cannot read as {'Parquet' if path.suffix == '.parquet' else 'CSV'}: {exc}"
+        ) from None
+
+
+def _seconds(column: pa.ChunkedArray, path: Path) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+    """Timestamps as float seconds since the epoch, and which rows failed to parse."""
+    kind = column.type
+    if pa.types.is_timestamp(kind):
+        nanos = column.cast(pa.timestamp("ns", tz=kind.tz)).cast(pa.int64())
+        values = nanos.to_numpy(zero_copy_only=False).astype(np.float64) / 1e9
+        return values, np.asarray(column.is_null().to_numpy(zero_copy_only=False))
+    if pa.types.is_integer(kind) or pa.types.is_floating(kind):
+        values = column.cast(pa.float64()).to_numpy(zero_copy_only=False)
+        values = np.where(np.isnan(values), np.nan, values)
+        return values, ~np.isfinite(values)
+    if pa.types.is_string(kind) or pa.types.is_large_string(kind):
+        texts = column.to_pylist()
+        out = np.full(len(texts), np.nan)
+        for i, text in enumerate(texts):
+            out[i] = _parse_time(text)
+        return out, ~np.isfinite(out)
+    raise DataError(f"{path}: the timestamp column has type {kind}; use ISO 8601 or epoch seconds")
+
+
+def _parse_time(text: str | None) -> float:
+    from datetime import UTC, datetime  # noqa: PLC0415 - only for odd timestamp strings
+
+    if text is None:
+        return math.nan
+    try:
+        return float(text)
+    except ValueError:
+        pass
+    try:
+        moment = datetime.fromisoformat(text.strip())
+    except ValueError:
+        return math.nan
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=UTC)
+    return moment.timestamp()
+
+
+def _numbers(column: pa.ChunkedArray) -> NDArray[np.float64]:
+    """A column as floats; unparseable entries become NaN (reported by the caller)."""
+    if pa.types.is_integer(column.type) or pa.types.is_floating(column.type):
+        return np.asarray(column.cast(pa.float64()).to_numpy(zero_copy_only=False), dtype=np.float64)
+    out = np.full(len(column), np.nan)
+    for i, text in enumerate(column.to_pylist()):
+        try:
+            out[i] = float(text)
+        except (TypeError, ValueError):
+            out[i] = math.nan
+    return out
+
+
+def read_table(path: str | Path) -> ReadingTable:
+    """Read a CSV or Parquet file of readings; rows that cannot be used are listed, not fatal."""
+    file = Path(path)
+    table, first_line = _load_arrow(file)
+    names = set(table.column_names)
+    key_column = "chart" if "chart" in names else "topic" if "topic" in names else None
+    missing = [c for c in ("timestamp", "value") if c not in names]
+    if key_column is None or missing:
+        need = ([] if key_column else ["chart or topic"]) + missing
+        raise DataError(f"{file}: missing column(s) {', '.join(need)}; found {', '.join(table.column_names)}")
+    rows = table.num_rows
+    lines = np.arange(first_line, first_line + rows, dtype=np.int64)
+    keys_column = table.column(key_column)
+    encoded = pc.dictionary_encode(keys_column.cast(pa.string())).combine_chunks()
+    key_index = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
+    keys = [str(k) for k in encoded.dictionary.to_pylist()]
+    key_bad = np.asarray(keys_column.is_null().to_numpy(zero_copy_only=False)) | (key_index < 0)
+    if "" in keys:
+        key_bad |= key_index == keys.index("")
+    times, time_bad = _seconds(table.column("timestamp"), file)
+    values = _numbers(table.column("value"))
+    value_bad = ~np.isfinite(values)
+    exposures = None
+    exposure_bad = np.zeros(rows, dtype=bool)
+    if "exposure" in names:
+        column = table.column("exposure")
+        given = ~np.asarray(column.is_null().to_numpy(zero_copy_only=False))
+        if pa.types.is_string(column.type):
+            given &= np.asarray(
+                pc.not_equal(column, "").fill_null(value=False).to_numpy(zero_copy_only=False)
+            )
+        if given.any():
+            parsed = _numbers(column)
+            exposure_bad = given & ~(np.isfinite(parsed) & (parsed > 0))
+            exposures = np.where(given, parsed, 1.0)
+    bad = key_bad | time_bad | value_bad | exposure_bad
+    problems: list[RowProblem] = []
+    for pos in np.flatnonzero(bad)[:_MAX_LISTED].tolist():
+        if key_bad[pos]:
+            reason = f"empty {key_column}"
+        elif time_bad[pos]:
+            reason = "timestamp is not ISO 8601 or epoch seconds"
+        elif value_bad[pos]:
+            reason = "value is not a finite number"
+        else:
+            reason = "exposure is not a positive number"
+        problems.append(RowProblem(int(lines[pos]), reason))
+    good = ~bad
+    return ReadingTable(
+        key_column=key_column,
+        keys=keys,
+        key_index=key_index[good],
+        times=times[good],
+        values=values[good],
+        exposures=None if exposures is None else exposures[good],
+        lines=lines[good],
+        problems=problems,
+        problem_count=int(bad.sum()),
+    )
+
+
+# ---------------------------------------------------------------- routing and subgroups
+
+
+def _chart_rows(table: ReadingTable, chart: ChartConfig) -> NDArray[np.int64]:
+    """Positions of the rows that feed ``chart``, in file order."""
+    if table.key_column == "chart":
+        wanted = [i for i, key in enumerate(table.keys) if key == chart.id]
+    else:
+        wanted = [
+            i for i, key in enumerate(table.keys) if chart.topic is not None and matches(chart.topic, key)
+        ]
+    if not wanted:
+        return np.empty(0, dtype=np.int64)
+    return np.flatnonzero(np.isin(table.key_index, wanted))
+
+
+@dataclass(slots=True)
+class ChartReplay:
+    """What a replay did for one chart."""
+
+    chart: str
+    readings: int = 0
+    subgroups: int = 0
+    pending: int = 0
+    late: int = 0
+    short_windows: int = 0
+    short_readings: int = 0
+    signals: Counter[tuple[str, str, str]] = field(default_factory=Counter)
+    estimate: PhaseOneEstimate | None = None
+    monitoring_from: int | None = None
+
+
+def _count_batch(
+    chart: ChartConfig,
+    times: NDArray[np.float64],
+    values: NDArray[np.float64],
+    exposures: NDArray[np.float64] | None,
+    report: ChartReplay,
+) -> SubgroupBatch:
+    n = chart.subgroup.size or 1
+    m = values.shape[0] // n
+    report.pending = values.shape[0] - m * n
+    used = m * n
+    block_times = times[:used].reshape(m, n)
+    return SubgroupBatch.from_ragged(
+        values[:used],
+        np.full(m, n, dtype=np.int64),
+        exposures=None if exposures is None else exposures[:used],
+        start=block_times.min(axis=1),
+        end=block_times.max(axis=1),
+    )
+
+
+def _window_batch(
+    chart: ChartConfig,
+    times: NDArray[np.float64],
+    values: NDArray[np.float64],
+    exposures: NDArray[np.float64] | None,
+    report: ChartReplay,
+) -> SubgroupBatch:
+    grouper = chart.subgrouper()
+    if not isinstance(grouper, WindowSubgrouper):  # pragma: no cover - guarded by the caller
+        raise TypeError("window subgrouping expected")
+    if times.shape[0] == 0:
+        return SubgroupBatch.from_subgroups([])
+    if bool((np.diff(times) >= 0).all()):
+        # Readings in time order: every window closes in turn and none is late, so the
+        # windows are runs of equal window numbers (the streaming grouper gives the same).
+        windows = np.floor((times - grouper.origin) / grouper.width).astype(np.int64)
+        cuts = np.flatnonzero(np.diff(windows)) + 1
+        starts = np.concatenate([[0], cuts])
+        sizes = np.diff(np.concatenate([starts, [times.shape[0]]]))
+        keep = sizes >= grouper.min_size
+        report.short_windows = int((~keep).sum())
+        report.short_readings = int(sizes[~keep].sum())
+        take = np.repeat(keep, sizes)
+        kept_windows = windows[starts][keep]
+        return SubgroupBatch.from_ragged(
+            values[take],
+            sizes[keep],
+            exposures=None if exposures is None else exposures[take],
+            start=grouper.origin + kept_windows * grouper.width,
+            end=grouper.origin + (kept_windows + 1) * grouper.width,
+        )
+    subgroups: list[Subgroup] = []
+    for i in range(times.shape[0]):
+        exposure = None if exposures is None else float(exposures[i])
+        subgroups.extend(grouper.add(Reading(float(values[i]), float(times[i]), exposure)))
+    subgroups.extend(grouper.flush())
+    report.late = grouper.stats.late
+    report.short_windows = grouper.stats.short_windows
+    report.short_readings = grouper.stats.short_readings
+    return SubgroupBatch.from_subgroups(subgroups)
+
+
+# ---------------------------------------------------------------- output
+
+
+def _iso(seconds: NDArray[np.float64] | None, count: int) -> list[str | None]:
+    if seconds is None:
+        return [None] * count
+    known = np.isfinite(seconds)
+    millis = np.where(known, np.round(seconds * 1000.0), 0).astype("datetime64[ms]")
+    texts = np.datetime_as_string(millis, unit="ms", timezone="UTC")
+    return [str(t).replace("+0000", "Z") if k else None for t, k in zip(texts, known, strict=True)]
+
+
+def _finite(value: float) -> float | None:
+    return value if math.isfinite(value) else None
+
+
+def _signal_line(chart_id: str, signal: Signal, start: str | None, end: str | None) -> dict[str, object]:
+    return {
+        "type": "signal",
+        "chart": chart_id,
+        "kind": signal.chart.value,
+        "statistic": signal.statistic.value,
+        "rule": signal.rule.value,
+        "side": signal.side.value,
+        "subgroup": signal.subgroup,
+        "subgroups": list(signal.subgroups),
+        "start": start,
+        "end": end,
+        "value": signal.value,
+        "center": signal.center,
+        "lower": signal.lower,
+        "upper": signal.upper,
+        "z": signal.z,
+    }
+
+
+def _estimate_line(chart_id: str, estimate: PhaseOneEstimate) -> dict[str, object]:
+    return {
+        "type": "baseline",
+        "chart": chart_id,
+        "mean": estimate.parameters.mean,
+        "sigma": estimate.parameters.sigma,
+        "estimator": estimate.estimator,
+        "subgroups": estimate.subgroups,
+        "used": estimate.used,
+        "rounds": estimate.rounds,
+        "settled": estimate.settled,
+        "excluded": [e.to_state() for e in estimate.excluded],
+    }
+
+
+def _lines(
+    chart_id: str, batch: SubgroupBatch, result: SetResult, first: int, points: bool
+) -> Iterator[dict[str, object]]:
+    """Output lines in subgroup order: the points of a subgroup, then its signals."""
+    m = len(batch)
+    starts, ends = _iso(batch.start, m), _iso(batch.end, m)
+    if result.established is not None:
+        yield _estimate_line(chart_id, result.established)
+    signals_at: dict[int, list[Signal]] = {}
+    for signal in result.signals:
+        signals_at.setdefault(signal.subgroup, []).append(signal)
+    traces = [
+        (kind, trace, dict(zip(trace.subgroup.tolist(), range(len(trace)), strict=True)))
+        for kind, by_statistic in result.traces.items()
+        for trace in by_statistic.values()
+    ]
+    charted = sorted({i for _, trace, _ in traces for i in trace.subgroup.tolist()} | set(signals_at))
+    for index in charted:
+        pos = index - first
+        if points:
+            for kind, trace, where in traces:
+                at = where.get(index)
+                if at is None:
+                    continue
+                yield {
+                    "type": "point",
+                    "chart": chart_id,
+                    "kind": kind.value,
+                    "statistic": trace.statistic.value,
+                    "subgroup": index,
+                    "n": int(trace.n[at]),
+                    "start": starts[pos],
+                    "end": ends[pos],
+                    "value": float(trace.value[at]),
+                    "center": float(trace.center[at]),
+                    "lower": _finite(float(trace.lower[at])),
+                    "upper": _finite(float(trace.upper[at])),
+                }
+        for signal in signals_at.get(index, ()):
+            yield _signal_line(chart_id, signal, starts[pos], ends[pos])
+
+
+@dataclass(slots=True)
+class ReplaySummary:
+    """What a replay did, per chart, plus the rows it could not use."""
+
+    charts: list[ChartReplay]
+    rows_skipped: int
+    problems: list[RowProblem]
+    unrouted: int
+
+
+def replay(
+    config: Config,
+    data: str | Path,
+    out: IO[bytes] | None = None,
+    *,
+    points: bool = True,
+    progress: Callable[[str], None] | None = None,
+) -> ReplaySummary:
+    """Replay a data file through the configured charts, writing JSON lines to ``out``.
+
+    Args:
+        config: the validated configuration.
+        data: CSV or Parquet file of readings.
+        out: binary stream for the JSON lines; None writes nothing.
+        points: write a line per plotted point (else signals and baselines only).
+        progress: called with a short message as each chart starts.
+    """
+    table = read_table(data)
+    routed = np.zeros(table.key_index.shape[0], dtype=bool)
+    reports: list[ChartReplay] = []
+    for chart in config.charts:
+        if progress is not None:
+            progress(chart.id)
+        rows = _chart_rows(table, chart)
+        routed[rows] = True
+        report = ChartReplay(chart=chart.id, readings=int(rows.shape[0]))
+        times, values = table.times[rows], table.values[rows]
+        attribute = chart.spec().attribute is not None
+        exposures = None if table.exposures is None or not attribute else table.exposures[rows]
+        if chart.subgroup.window is not None:
+            batch = _window_batch(chart, times, values, exposures, report)
+        else:
+            batch = _count_batch(chart, times, values, exposures, report)
+        chart_set = ChartSet(chart.spec())
+        result = chart_set.update_many(batch)
+        report.subgroups = len(batch)
+        report.estimate = chart_set.estimate
+        plan = chart_set.spec.baseline
+        if chart_set.monitoring:
+            report.monitoring_from = 0 if plan is None else min(plan.subgroups, len(batch))
+        for signal in result.signals:
+            report.signals[(signal.chart.value, signal.statistic.value, signal.rule.value)] += 1
+        if out is not None:
+            for line in _lines(chart.id, batch, result, 0, points):
+                out.write(orjson.dumps(line))
+                out.write(b"\n")
+        reports.append(report)
+    return ReplaySummary(
+        charts=reports,
+        rows_skipped=table.problem_count,
+        problems=table.problems,
+        unrouted=int((~routed).sum()),
+    )
