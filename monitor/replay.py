@@ -335,6 +335,7 @@ def _signal_line(chart_id: str, signal: Signal, start: str | None, end: str | No
         "lower": signal.lower,
         "upper": signal.upper,
         "z": signal.z,
+        "run_start": signal.run_start,
     }
 
 

@@ -32,6 +32,7 @@ from monitor.spc._state import (
     get_int,
     get_optional_float,
     get_optional_state,
+    get_state,
     get_state_list,
     get_str,
     header,
@@ -164,6 +165,33 @@ class ChartSpec:
         if ChartKind.INDIVIDUALS in self.kinds or int(batch.sizes.max(initial=1)) == 1:
             return SigmaEstimator.MOVING_RANGE
         return SigmaEstimator.RANGE
+
+    def to_state(self) -> State:
+        """Everything this spec fixes, as plain data (stored with each chart-set snapshot)."""
+        baseline: State | None = None
+        if self.baseline is not None:
+            b = self.baseline
+            baseline = {
+                "subgroups": b.subgroups,
+                "estimator": None if b.estimator is None else b.estimator.value,
+                "exclude_out_of_control": b.exclude_out_of_control,
+                "max_rounds": b.max_rounds,
+                "max_excluded_share": b.max_excluded_share,
+            }
+        return {
+            "kinds": [k.value for k in self.kinds],
+            "rules": [r.to_state() for r in self.rules],
+            "limit_sigma": self.limit_sigma,
+            "standard": None if self.standard is None else self.standard.to_state(),
+            "baseline": baseline,
+            "ewma": {
+                "smoothing": self.ewma.smoothing,
+                "width": self.ewma.width,
+                "fast_initial_response": self.ewma.fast_initial_response,
+            },
+            "cusum": {"k": self.cusum.k, "h": self.cusum.h, "head_start": self.cusum.head_start},
+            "moving_range_span": self.moving_range_span,
+        }
 
     def build(self, parameters: ProcessParameters, first_index: int) -> tuple[Chart, ...]:
         """One chart object per kind, judged against ``parameters``."""
@@ -370,6 +398,7 @@ class ChartSet:
         """Everything needed to continue exactly where this set is, as plain data."""
         state = header("chart_set", _SCHEMA)
         state.update(
+            spec=self.spec.to_state(),
             next_index=self._next,
             baseline=[_subgroup_state(s) for s in self._baseline],
             estimate=None if self.estimate is None else self.estimate.to_state(),
@@ -382,6 +411,20 @@ class ChartSet:
     def from_state(cls, spec: ChartSpec, state: State) -> Self:
         """Rebuild a set of this spec from :meth:`to_state`."""
         check_header(state, "chart_set", _SCHEMA)
+        stored_spec = get_state(state, "spec")
+        wanted = spec.to_state()
+        if stored_spec != wanted:
+            changed = sorted(
+                k for k in wanted.keys() | stored_spec.keys() if wanted.get(k) != stored_spec.get(k)
+            )
+            details = "; ".join(
+                f"{k}: snapshot {_short(stored_spec.get(k))}, configuration {_short(wanted.get(k))}"
+                for k in changed
+            )
+            raise StateError(
+                f"snapshot was taken with other chart settings ({details}); "
+                "start the chart afresh or restore the old configuration"
+            )
         chart_set = cls(spec)
         chart_set._next = get_int(state, "next_index")
         chart_set._baseline = [_subgroup_from(s) for s in get_state_list(state, "baseline")]
@@ -399,6 +442,11 @@ class ChartSet:
             )
         chart_set.charts = tuple(_CLASSES[k].from_state(s) for k, s in zip(spec.kinds, stored, strict=False))
         return chart_set
+
+
+def _short(value: object, limit: int = 120) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
 def _subgroup_state(subgroup: Subgroup) -> State:

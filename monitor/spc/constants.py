@@ -23,6 +23,7 @@ Examples:
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass
 from functools import cache
 
@@ -52,9 +53,11 @@ class ChartConstants:
     E2: float
 
 
-def _check_n(n: int) -> None:
-    if isinstance(n, bool) or not isinstance(n, int) or n < 2:
+def _check_n(n: object) -> int:
+    """The size as a plain int (numpy integers accepted), or a ConfigError."""
+    if isinstance(n, bool) or not isinstance(n, numbers.Integral) or int(n) < 2:
         raise ConfigError(f"subgroup size must be an integer of at least 2, got {n!r}")
+    return int(n)
 
 
 def _phi(x: float) -> float:
@@ -66,16 +69,8 @@ def _density(x: float) -> float:
 
 
 @cache
-def d2(n: int) -> float:
-    """Mean of the relative range of ``n`` standard normal readings.
-
-    d2(n) = integral over x of 1 - Phi(x)^n - (1 - Phi(x))^n.
-
-    Examples:
-        >>> round(d2(2), 6)  # 2 / sqrt(pi)
-        1.128379
-    """
-    _check_n(n)
+def _d2(n: int) -> float:
+    """d2(n) = integral over x of 1 - Phi(x)^n - (1 - Phi(x))^n."""
 
     def integrand(x: float) -> float:
         p = _phi(x)
@@ -99,17 +94,11 @@ def _range_cdf(w: float, n: int) -> float:
 
 
 @cache
-def d3(n: int) -> float:
-    """Standard deviation of the relative range of ``n`` standard normal readings.
+def _d3(n: int) -> float:
+    """d3(n) from E[W^2] = 2 * integral over w > 0 of w * (1 - F_W(w)).
 
-    E[W^2] = 2 * integral over w > 0 of w * (1 - F_W(w)), with
     F_W(w) = n * integral of phi(x) * (Phi(x + w) - Phi(x))^(n - 1) dx.
-
-    Examples:
-        >>> round(d3(2), 4)
-        0.8525
     """
-    _check_n(n)
     second_moment, _ = integrate.quad(
         lambda w: w * (1.0 - _range_cdf(w, n)),
         0.0,
@@ -118,37 +107,20 @@ def d3(n: int) -> float:
         epsrel=1e-11,
         limit=200,
     )
-    variance = 2.0 * float(second_moment) - d2(n) ** 2
+    variance = 2.0 * float(second_moment) - _d2(n) ** 2
     return math.sqrt(variance)
 
 
 @cache
-def c4(n: int) -> float:
-    """Mean of S / sigma for ``n`` normal readings: sqrt(2/(n-1)) Gamma(n/2) / Gamma((n-1)/2).
-
-    Examples:
-        >>> round(c4(2), 6)  # sqrt(2 / pi)
-        0.797885
-    """
-    _check_n(n)
+def _c4(n: int) -> float:
+    """c4(n) = sqrt(2/(n-1)) Gamma(n/2) / Gamma((n-1)/2), through log-gamma for large n."""
     log_ratio = float(special.gammaln(n / 2.0) - special.gammaln((n - 1) / 2.0))
     return math.sqrt(2.0 / (n - 1)) * math.exp(log_ratio)
 
 
 @cache
-def constants(n: int) -> ChartConstants:
-    """All chart constants for subgroups of ``n`` readings (n >= 2), cached.
-
-    Examples:
-        >>> constants(25).c4 > constants(24).c4
-        True
-        >>> constants(1)
-        Traceback (most recent call last):
-        ...
-        monitor.spc.errors.ConfigError: subgroup size must be an integer of at least 2, got 1
-    """
-    _check_n(n)
-    mean_range, sd_range, mean_sd = d2(n), d3(n), c4(n)
+def _constants(n: int) -> ChartConstants:
+    mean_range, sd_range, mean_sd = _d2(n), _d3(n), _c4(n)
     root_n = math.sqrt(n)
     spread_s = 3.0 * math.sqrt(1.0 - mean_sd * mean_sd) / mean_sd
     spread_r = 3.0 * sd_range / mean_range
@@ -165,3 +137,47 @@ def constants(n: int) -> ChartConstants:
         D4=1.0 + spread_r,
         E2=3.0 / mean_range,
     )
+
+
+def d2(n: int) -> float:
+    """Mean of the relative range of ``n`` standard normal readings (cached).
+
+    Examples:
+        >>> round(d2(2), 6)  # 2 / sqrt(pi)
+        1.128379
+    """
+    return _d2(_check_n(n))
+
+
+def d3(n: int) -> float:
+    """Standard deviation of the relative range of ``n`` standard normal readings (cached).
+
+    Examples:
+        >>> round(d3(2), 4)
+        0.8525
+    """
+    return _d3(_check_n(n))
+
+
+def c4(n: int) -> float:
+    """Mean of S / sigma for ``n`` normal readings (cached).
+
+    Examples:
+        >>> round(c4(2), 6)  # sqrt(2 / pi)
+        0.797885
+    """
+    return _c4(_check_n(n))
+
+
+def constants(n: int) -> ChartConstants:
+    """All chart constants for subgroups of ``n`` readings (n >= 2), cached.
+
+    Examples:
+        >>> constants(25).c4 > constants(24).c4
+        True
+        >>> constants(1)
+        Traceback (most recent call last):
+        ...
+        monitor.spc.errors.ConfigError: subgroup size must be an integer of at least 2, got 1
+    """
+    return _constants(_check_n(n))

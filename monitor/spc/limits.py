@@ -163,7 +163,8 @@ class PhaseOneEstimate:
         subgroups: baseline subgroups offered.
         used: subgroups kept in the final estimate.
         excluded: subgroups left out, in the order found.
-        rounds: estimation rounds run.
+        rounds: estimation rounds run (at most ``max_rounds``; a last check that only decides
+            ``settled`` is not counted).
         settled: False when the caps stopped the exclusion before it settled.
     """
 
@@ -296,9 +297,11 @@ def phase_one(
     """Estimate the process mean and sigma from a baseline, optionally excluding outliers.
 
     In each round the trial limits come from the subgroups still kept; a kept subgroup whose
-    mean or spread lies beyond its trial limits is excluded. The rounds stop when nothing
-    new is excluded, after ``max_rounds``, or before the excluded share would pass
-    ``max_excluded_share`` (then ``settled`` is False and that round's exclusions are not made).
+    mean or spread lies beyond its trial limits is excluded (for single readings, a moving
+    range beyond its limit excludes its later reading unless the earlier one is itself out).
+    The rounds stop when nothing new is excluded. When a further round would still exclude
+    something after ``max_rounds`` rounds, or would push the excluded share past
+    ``max_excluded_share``, its exclusions are not made and ``settled`` is False.
 
     Args:
         batch: the baseline subgroups.
@@ -321,20 +324,21 @@ def phase_one(
     rounds, settled = 0, True
     mean, sigma = _grand_mean(batch, keep), estimate_sigma(batch, estimator, keep)
     while exclude_out_of_control:
-        if rounds >= max_rounds:
-            settled = False
-            break
         rounds += 1
         half = limit_sigma * sigma / np.sqrt(batch.sizes)
         mean_out = keep & ((means > mean + half) | (means < mean - half))
         statistic, spread, low, high = _spread_check(batch, estimator, sigma, limit_sigma)
         spread_out = keep & ~mean_out & ((spread > high) | (spread < low))
+        if estimator is SigmaEstimator.MOVING_RANGE:
+            # A moving range spans a reading and the one before: it adds nothing when that
+            # earlier reading is itself beyond its limits or already excluded.
+            earlier_fine = np.concatenate([[False], keep[:-1] & ~mean_out[:-1]])
+            spread_out &= earlier_fine
         new = mean_out | spread_out
         if not new.any():
             break
-        if (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m or int(
-            (keep & ~new).sum()
-        ) < needed:
+        too_many = (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m
+        if rounds > max_rounds or too_many or int((keep & ~new).sum()) < needed:
             settled = False
             break
         for pos in np.flatnonzero(new).tolist():
@@ -365,7 +369,7 @@ def phase_one(
         subgroups=m,
         used=int(keep.sum()),
         excluded=tuple(excluded),
-        rounds=rounds,
+        rounds=min(rounds, max_rounds),
         settled=settled,
     )
 
@@ -404,9 +408,6 @@ def phase_one_attribute(
 
     center = center_of(keep)
     while exclude_out_of_control:
-        if rounds >= max_rounds:
-            settled = False
-            break
         rounds += 1
         unit = center * (1.0 - center) if kind is AttributeKind.P else center
         half = limit_sigma * np.sqrt(unit / exposure)
@@ -414,7 +415,8 @@ def phase_one_attribute(
         new = keep & ((rates > high) | (rates < low))
         if not new.any():
             break
-        if (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m or int((keep & ~new).sum()) < 2:
+        too_many = (m - int(keep.sum()) + int(new.sum())) > max_excluded_share * m
+        if rounds > max_rounds or too_many or int((keep & ~new).sum()) < 2:
             settled = False
             break
         excluded.extend(
@@ -441,6 +443,6 @@ def phase_one_attribute(
         subgroups=m,
         used=int(keep.sum()),
         excluded=tuple(excluded),
-        rounds=rounds,
+        rounds=min(rounds, max_rounds),
         settled=settled,
     )

@@ -13,7 +13,8 @@ enabled and parameterised on its own; two presets collect the classical sets:
 
 Conventions (common practice, stated here so they are testable):
 
-* "beyond" is strict: a point exactly on a limit or zone line is not beyond it;
+* "beyond" is strict: a point exactly on a limit or zone line is not beyond it, and so it
+  counts as within that line;
 * a point exactly on the center line ends a run on one side; equal neighbours end a trend
   or an alternation;
 * a rule fires at the point that completes its pattern, and that point is part of the
@@ -397,7 +398,7 @@ class RuleSet:
         if rid is RuleId.ALTERNATING_RUN:
             return RuleHit(index, rid, Side.EITHER, run) if self._alt_run >= length - 1 else None
         if rid is RuleId.HUGGING_CENTER:
-            self._inside_run = self._inside_run + 1 if abs(z) < rule.sigma else 0
+            self._inside_run = self._inside_run + 1 if abs(z) <= rule.sigma else 0
             return RuleHit(index, rid, Side.EITHER, run) if self._inside_run >= length else None
         # AVOIDING_CENTER
         if abs(z) > rule.sigma:
@@ -420,7 +421,8 @@ class RuleSet:
             side = Side.LOWER
         else:
             return None
-        window = [*self._recent[len(self._recent) - (rule.length - 1) :], z] if rule.length > 1 else [z]
+        carried = self._recent[max(0, len(self._recent) - (rule.length - 1)) :] if rule.length > 1 else []
+        window = [*carried, z]
         first = index - len(window) + 1
         if side is Side.UPPER:
             involved = tuple(first + i for i, v in enumerate(window) if v > rule.sigma)
@@ -479,7 +481,7 @@ class RuleSet:
                 self._alt_run = 0 if signs[-1] == 0 else _final_run(continues, carried) + 1
                 self._last_sign = int(signs[-1])
             elif rid is RuleId.HUGGING_CENTER:
-                inside = np.abs(values) < rule.sigma
+                inside = np.abs(values) <= rule.sigma
                 emit(_long_runs(inside, self._inside_run, length), rule, order, Side.EITHER)
                 self._inside_run = _final_run(inside, self._inside_run)
             else:  # AVOIDING_CENTER
@@ -505,7 +507,7 @@ class RuleSet:
         return [hit for _, _, hit in found]
 
     def _scan_cluster(self, rule: Rule, values: NDArray[np.float64], first_index: int) -> list[RuleHit]:
-        carried = self._recent[len(self._recent) - (rule.length - 1) :] if rule.length > 1 else []
+        carried = self._recent[max(0, len(self._recent) - (rule.length - 1)) :] if rule.length > 1 else []
         joined = np.concatenate([np.asarray(carried, dtype=np.float64), values])
         offset = len(carried)
         hits: list[RuleHit] = []

@@ -59,6 +59,8 @@ class Signal:
         lower: the lower control limit there (None if the chart has none).
         upper: the upper control limit there (None if the chart has none).
         z: the statistic in sigma units from the center, where that is defined.
+        run_start: for CUSUM signals, the first subgroup since the sum was last zero (the
+            estimated start of the shift); ``subgroups`` then lists at most the last 64.
     """
 
     chart: ChartKind
@@ -72,3 +74,4 @@ class Signal:
     lower: float | None
     upper: float | None
     z: float | None = None
+    run_start: int | None = None

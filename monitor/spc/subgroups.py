@@ -200,6 +200,8 @@ class SubgroupBatch:
         width = int(size_array.max()) if size_array.size else 1
         values = _pad(flat_values, size_array, width)
         padded_exposures = None
+        if exposures is not None and len(exposures) != flat_values.shape[0]:
+            raise ReadingError(f"{flat_values.shape[0]} readings were given but {len(exposures)} exposures")
         if exposures is not None:
             padded_exposures = _pad(np.asarray(exposures, dtype=np.float64), size_array, width, fill=1.0)
         return cls(values=values, sizes=size_array, start=start, end=end, exposures=padded_exposures)
@@ -369,7 +371,9 @@ class WindowStats:
     """What a window subgrouper did with readings that did not make a subgroup."""
 
     late: int = 0
-    """Readings for a window already closed (dropped)."""
+    """Readings that came after their window's end plus the lateness (dropped)."""
+    overflow: int = 0
+    """Readings for a window closed early because too many were open (dropped)."""
     short_windows: int = 0
     """Windows that closed with fewer than ``min_size`` readings (dropped)."""
     short_readings: int = 0
@@ -380,10 +384,10 @@ class WindowSubgrouper:
     """Groups readings by clock-aligned event-time windows.
 
     Window ``k`` covers ``[origin + k * width, origin + (k + 1) * width)``. A window
-    closes once the newest event time seen, minus ``lateness``, has passed its end, or
-    when :meth:`advance` is told the time has passed it. Readings for a closed window are
-    late: counted and dropped. A window with fewer than ``min_size`` readings closes
-    without a subgroup (counted).
+    closes once the newest event time seen, minus ``lateness``, reaches its end, or when
+    :meth:`advance` is told that time has come. Readings for a closed window are counted
+    and dropped: as late, or as overflow when ``max_open`` had closed their window early.
+    A window with fewer than ``min_size`` readings closes without a subgroup (counted).
 
     Args:
         width: window length in seconds.
@@ -454,7 +458,10 @@ class WindowSubgrouper:
         """Add one reading; return the subgroups of the windows this closes, oldest first."""
         window = self.window_of(reading.time)
         if window < self._closed_before:
-            self.stats.late += 1
+            if window >= self._first_open_by_time():
+                self.stats.overflow += 1
+            else:
+                self.stats.late += 1
             return []
         self._open.setdefault(window, []).append(reading)
         closed = self._close_through(reading.time - self.lateness)
@@ -473,12 +480,19 @@ class WindowSubgrouper:
             out.extend(self._close_oldest())
         return out
 
-    def _close_through(self, watermark: float) -> list[Subgroup]:
-        self._watermark = max(self._watermark, watermark)
-        # every window whose end is at or before the watermark is complete
+    def _first_open_by_time(self) -> int:
+        """The oldest window the event time seen so far still leaves open."""
+        if math.isinf(self._watermark):
+            return -(2**62)
         first_open = self.window_of(self._watermark)
         if self.window_start(first_open + 1) <= self._watermark:  # rounding guard
             first_open += 1
+        return first_open
+
+    def _close_through(self, watermark: float) -> list[Subgroup]:
+        self._watermark = max(self._watermark, watermark)
+        # every window whose end is at or before the watermark is complete
+        first_open = self._first_open_by_time()
         out: list[Subgroup] = []
         for window in sorted(w for w in self._open if w < first_open):
             out.extend(self._close(window))
@@ -520,6 +534,7 @@ class WindowSubgrouper:
             closed_before=self._closed_before,
             watermark=None if math.isinf(self._watermark) else self._watermark,
             late=self.stats.late,
+            overflow=self.stats.overflow,
             short_windows=self.stats.short_windows,
             short_readings=self.stats.short_readings,
             windows=[
@@ -545,6 +560,7 @@ class WindowSubgrouper:
         grouper._watermark = -math.inf if watermark is None else watermark
         grouper.stats = WindowStats(
             late=get_int(state, "late"),
+            overflow=get_int(state, "overflow"),
             short_windows=get_int(state, "short_windows"),
             short_readings=get_int(state, "short_readings"),
         )

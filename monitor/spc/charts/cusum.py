@@ -46,6 +46,9 @@ __all__ = ["CusumChart"]
 REBASE_EVERY = 4096
 """Subgroups between re-basings of the cumulative sums (keeps them small)."""
 
+LISTED = 64
+"""Most subgroups a signal lists; a long shift is summarised by its ``run_start``."""
+
 
 class _Side:
     """One one-sided sum in cumulative form: C = S - M, M = min(0, S_1..S_t)."""
@@ -134,7 +137,8 @@ class CusumChart(ChartBase):
 
         N is the number of subgroups since the sum last was zero (Montgomery, CUSUM chapter).
         """
-        steps = len(signal.subgroups)
+        start = signal.subgroups[0] if signal.run_start is None else signal.run_start
+        steps = signal.subgroup - start + 1
         move = (self.sigma / math.sqrt(n)) * (self.k + signal.value / steps)
         return self.mean + move if signal.side is Side.UPPER else self.mean - move
 
@@ -171,11 +175,12 @@ class CusumChart(ChartBase):
             rule=RuleId.BEYOND_LIMITS,
             side=side,
             subgroup=point.subgroup,
-            subgroups=tuple(range(since, point.subgroup + 1)),
+            subgroups=tuple(range(max(since, point.subgroup - LISTED + 1), point.subgroup + 1)),
             value=point.value,
             center=0.0,
             lower=None,
             upper=self.h,
+            run_start=since,
         )
 
     def update_many(self, batch: SubgroupBatch) -> BatchResult:

@@ -397,7 +397,7 @@ class IndividualsChart(ChartBase):
         if len(moving) and int(moving.subgroup[-1]) == first + m - 1:
             last_points.append(moving.point(len(moving) - 1))
         self._last_points = tuple(last_points)
-        self._recent = joined[joined.shape[0] - (span - 1) :].tolist()
+        self._recent = joined[max(0, joined.shape[0] - (span - 1)) :].tolist()
         self._next = first + m
         return BatchResult(
             signals=signals,
