@@ -195,73 +195,43 @@ class ChartSpec:
 
     def build(self, parameters: ProcessParameters, first_index: int) -> tuple[Chart, ...]:
         """One chart object per kind, judged against ``parameters``."""
-        charts: list[Chart] = []
-        for kind in self.kinds:
-            if kind is ChartKind.P:
-                charts.append(
-                    PChart(
-                        proportion=parameters.mean,
-                        rules=self.rules,
-                        limit_sigma=self.limit_sigma,
-                        first_index=first_index,
-                    )
-                )
-            elif kind is ChartKind.U:
-                charts.append(
-                    UChart(
-                        rate=parameters.mean,
-                        rules=self.rules,
-                        limit_sigma=self.limit_sigma,
-                        first_index=first_index,
-                    )
-                )
-            elif kind is ChartKind.EWMA:
-                e = self.ewma
-                charts.append(
-                    EwmaChart(
-                        mean=parameters.mean,
-                        sigma=parameters.require_sigma(),
-                        smoothing=e.smoothing,
-                        width=e.width,
-                        fast_initial_response=e.fast_initial_response,
-                        first_index=first_index,
-                    )
-                )
-            elif kind is ChartKind.CUSUM:
-                c = self.cusum
-                charts.append(
-                    CusumChart(
-                        mean=parameters.mean,
-                        sigma=parameters.require_sigma(),
-                        k=c.k,
-                        h=c.h,
-                        head_start=c.head_start,
-                        first_index=first_index,
-                    )
-                )
-            elif kind is ChartKind.INDIVIDUALS:
-                charts.append(
-                    IndividualsChart(
-                        mean=parameters.mean,
-                        sigma=parameters.require_sigma(),
-                        rules=self.rules,
-                        limit_sigma=self.limit_sigma,
-                        moving_range_span=self.moving_range_span,
-                        first_index=first_index,
-                    )
-                )
-            else:
-                shewhart = XbarRChart if kind is ChartKind.XBAR_R else XbarSChart
-                charts.append(
-                    shewhart(
-                        mean=parameters.mean,
-                        sigma=parameters.require_sigma(),
-                        rules=self.rules,
-                        limit_sigma=self.limit_sigma,
-                        first_index=first_index,
-                    )
-                )
-        return tuple(charts)
+        return tuple(self._build_one(kind, parameters, first_index) for kind in self.kinds)
+
+    def _build_one(self, kind: ChartKind, parameters: ProcessParameters, first_index: int) -> Chart:
+        rules, limit_sigma = self.rules, self.limit_sigma
+        if kind is ChartKind.P:
+            return PChart(
+                proportion=parameters.mean, rules=rules, limit_sigma=limit_sigma, first_index=first_index
+            )
+        if kind is ChartKind.U:
+            return UChart(rate=parameters.mean, rules=rules, limit_sigma=limit_sigma, first_index=first_index)
+        mean, sigma = parameters.mean, parameters.require_sigma()
+        if kind is ChartKind.EWMA:
+            e = self.ewma
+            return EwmaChart(
+                mean=mean,
+                sigma=sigma,
+                smoothing=e.smoothing,
+                width=e.width,
+                fast_initial_response=e.fast_initial_response,
+                first_index=first_index,
+            )
+        if kind is ChartKind.CUSUM:
+            c = self.cusum
+            return CusumChart(
+                mean=mean, sigma=sigma, k=c.k, h=c.h, head_start=c.head_start, first_index=first_index
+            )
+        if kind is ChartKind.INDIVIDUALS:
+            return IndividualsChart(
+                mean=mean,
+                sigma=sigma,
+                rules=rules,
+                limit_sigma=limit_sigma,
+                moving_range_span=self.moving_range_span,
+                first_index=first_index,
+            )
+        shewhart = XbarRChart if kind is ChartKind.XBAR_R else XbarSChart
+        return shewhart(mean=mean, sigma=sigma, rules=rules, limit_sigma=limit_sigma, first_index=first_index)
 
 
 @dataclass(frozen=True, eq=False)
