@@ -44,6 +44,7 @@ from monitor.spc.limits import (
     phase_one,
     phase_one_attribute,
 )
+from monitor.spc.pvalues import PValue, p_value, pattern_probability
 from monitor.spc.rules import PRESETS, Rule, RuleHit, RuleSet, nelson, rule_preset, western_electric
 from monitor.spc.signals import RuleId, Side, Signal
 from monitor.spc.subgroups import (
@@ -77,6 +78,7 @@ __all__ = [
     "MonitorError",
     "NotEnoughData",
     "PChart",
+    "PValue",
     "PhaseOneEstimate",
     "Point",
     "ProcessParameters",
@@ -103,6 +105,8 @@ __all__ = [
     "constants",
     "estimate_sigma",
     "nelson",
+    "p_value",
+    "pattern_probability",
     "phase_one",
     "phase_one_attribute",
     "rule_preset",

@@ -31,7 +31,7 @@ from scipy import integrate, special
 
 from monitor.spc.errors import ConfigError
 
-__all__ = ["ChartConstants", "c4", "constants", "d2", "d3"]
+__all__ = ["ChartConstants", "c4", "constants", "d2", "d3", "range_cdf"]
 
 _QUAD_TOL = 1e-12
 
@@ -81,8 +81,13 @@ def _d2(n: int) -> float:
     return 2.0 * float(value)
 
 
-def _range_cdf(w: float, n: int) -> float:
-    """P(W <= w) for the relative range of n standard normal readings."""
+def range_cdf(w: float, n: int) -> float:
+    """P(W <= w) for the relative range W = R / sigma of n normal readings.
+
+    Examples:
+        >>> round(range_cdf(1.128379 * 3, 2), 4)  # |X1 - X2| / sigma is sqrt(2) |Z|
+        0.9833
+    """
     if w <= 0.0:
         return 0.0
 
@@ -100,7 +105,7 @@ def _d3(n: int) -> float:
     F_W(w) = n * integral of phi(x) * (Phi(x + w) - Phi(x))^(n - 1) dx.
     """
     second_moment, _ = integrate.quad(
-        lambda w: w * (1.0 - _range_cdf(w, n)),
+        lambda w: w * (1.0 - range_cdf(w, n)),
         0.0,
         math.inf,
         epsabs=1e-11,
