@@ -15,16 +15,13 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import IO
 
+from monitor.alerts import ADVISORY
 from monitor.config import ChartConfig, Config, ConfigProblems, load_config
 from monitor.replay import DataError, ReplaySummary, replay
 from monitor.spc import ChartKind, MonitorError, constants
 
 __all__ = ["ADVISORY", "main"]
 
-ADVISORY = (
-    "Advisory only: this is statistical evidence for people, not a safety system. No interlock, "
-    "trip or shutdown may depend on it; follow local codes and licensed practice."
-)
 
 EXIT_OK, EXIT_PROBLEM, EXIT_USAGE = 0, 1, 2
 
@@ -159,6 +156,21 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# ---------------------------------------------------------------- run
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """Run the daemon until SIGTERM or SIGINT."""
+    import asyncio  # noqa: PLC0415 - only the daemon needs the event loop
+
+    from monitor.daemon import run_daemon  # noqa: PLC0415 - keeps the other commands light
+    from monitor.logs import configure_logging  # noqa: PLC0415
+
+    config = _load(args.config)
+    configure_logging(level=args.log_level)
+    return asyncio.run(run_daemon(config, Path(args.config)))
+
+
 # ---------------------------------------------------------------- entry point
 
 
@@ -200,6 +212,20 @@ def build_parser() -> argparse.ArgumentParser:
     rep.add_argument("--out", help="write the JSON lines here instead of standard output")
     rep.add_argument("--signals-only", action="store_true", help="leave out the plotted points")
     rep.set_defaults(run=cmd_replay)
+
+    run = commands.add_parser(
+        "run",
+        help="run the daemon: MQTT in, charts, storage, alerts out",
+        description=(
+            "Subscribe to the configured topics, keep every chart current, store everything and "
+            "publish alerts until stopped (SIGTERM or SIGINT stop it cleanly). " + ADVISORY
+        ),
+        epilog="example:\n  monitor run --config config/demo.yaml",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    run.add_argument("--config", required=True, help="YAML configuration file")
+    run.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    run.set_defaults(run=cmd_run)
     return parser
 
 
@@ -215,6 +241,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DataError, MonitorError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_PROBLEM
+    except KeyboardInterrupt:
+        return EXIT_OK
     except BrokenPipeError:
         return EXIT_OK
 

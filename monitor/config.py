@@ -23,10 +23,10 @@ from __future__ import annotations
 import difflib
 import math
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Annotated, TypeAlias
+from typing import Annotated, Literal, TypeAlias
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 from ruamel.yaml import YAML
@@ -48,6 +48,7 @@ from monitor.spc import (
     SigmaEstimator,
     WindowSubgrouper,
 )
+from monitor.topics import overlaps
 
 __all__ = [
     "ChartConfig",
@@ -60,7 +61,11 @@ __all__ = [
 
 Loc: TypeAlias = tuple[str | int, ...]
 
-_CHART_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*(/[A-Za-z0-9][A-Za-z0-9._-]*)*$")
+_LEVEL = r"(?:[A-Za-z0-9][A-Za-z0-9._-]*|\{[A-Za-z_][A-Za-z0-9_]*\})"
+_CHART_ID = re.compile(rf"^{_LEVEL}(/{_LEVEL})*$")
+_PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
+_PREFIX = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*(/[A-Za-z0-9][A-Za-z0-9._-]*)*$")
+_CLIENT_ID = re.compile(r"^[A-Za-z0-9._-]{1,64}$")
 _DURATION = re.compile(r"^\s*([0-9]+(?:\.[0-9]*)?|\.[0-9]+)\s*(ms|s|m|h|d)?\s*$")
 _UNIT_SECONDS = {"ms": 0.001, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0, None: 1.0}
 
@@ -91,6 +96,8 @@ def _check_topic_filter(topic: str) -> str:
         raise ValueError("a topic filter is a non-empty string without NUL characters")
     levels = topic.split("/")
     for i, level in enumerate(levels):
+        if _PLACEHOLDER.fullmatch(level):
+            continue
         if "#" in level and (level != "#" or i != len(levels) - 1):
             raise ValueError(f"'#' may only be a whole last level of a topic filter, got {topic!r}")
         if "+" in level and level != "+":
@@ -172,11 +179,27 @@ class RuleParams(_Strict):
 RuleEntry: TypeAlias = str | dict[str, RuleParams | None]
 
 
+class PayloadConfig(_Strict):
+    """How a message carries readings: a bare number, or JSON with paths to the fields."""
+
+    format: Literal["number", "json"] = "number"
+    value: str = "value"
+    timestamp: str | None = None
+    sequence: str | None = None
+    exposure: str | None = None
+    batch: Literal["none", "array", "columns"] = "none"
+    items: str = ""
+    max_bytes: Annotated[int, Field(ge=16, le=64_000_000)] = 1_000_000
+
+
 class ChartConfig(_Strict):
-    """One monitored characteristic."""
+    """One monitored characteristic (or, with placeholders, one per matched topic level)."""
 
     id: str
+    title: Annotated[str, Field(max_length=200)] = ""
+    unit: Annotated[str, Field(max_length=40)] = ""
     topic: str | None = None
+    payload: PayloadConfig = PayloadConfig()
     subgroup: SubgroupConfig = SubgroupConfig(size=1)
     kinds: Annotated[list[ChartKind], Field(min_length=1)]
     limits: LimitsConfig
@@ -193,9 +216,14 @@ class ChartConfig(_Strict):
         if len(value) > 200 or not _CHART_ID.match(value):
             raise ValueError(
                 "a chart id is 1-200 characters of letters, digits, '.', '_', '-', in levels "
-                f"separated by single '/', got {value!r}"
+                f"separated by single '/' (a level may be a {{placeholder}} of the topic), got {value!r}"
             )
         return value
+
+    @property
+    def placeholders(self) -> list[str]:
+        """Names of the ``{placeholder}`` levels of the chart id."""
+        return _PLACEHOLDER.findall(self.id)
 
     @field_validator("topic")
     @classmethod
@@ -252,9 +280,80 @@ class ChartConfig(_Strict):
         return CountSubgrouper(size=s.size or 1)
 
 
+class TlsConfig(_Strict):
+    """TLS to the broker: CA bundle, optional client certificate and key (file paths)."""
+
+    ca: str | None = None
+    cert: str | None = None
+    key: str | None = None
+    verify_hostname: bool = True
+
+
+class BrokerConfig(_Strict):
+    """Where the MQTT broker is and who we are there. Passwords never go in this file."""
+
+    host: Annotated[str, Field(min_length=1, max_length=253)] = "127.0.0.1"
+    port: Annotated[int, Field(ge=1, le=65535)] = 1883
+    client_id: str = "line-monitor"
+    username: str | None = None
+    password_env: str | None = None
+    password_file: str | None = None
+    tls: TlsConfig | None = None
+    qos: Literal[0, 1] = 1
+    persistent_session: bool = True
+    keepalive: Annotated[int, Field(ge=5, le=3600)] = 30
+    reconnect_max: float = 30.0
+
+    @field_validator("reconnect_max", mode="before")
+    @classmethod
+    def _duration(cls, value: object) -> object:
+        return parse_duration(value)
+
+    @field_validator("client_id")
+    @classmethod
+    def _client_id(cls, value: str) -> str:
+        if not _CLIENT_ID.match(value):
+            raise ValueError(f"a client id is 1-64 letters, digits, '.', '_' or '-', got {value!r}")
+        return value
+
+
+class StorageConfig(_Strict):
+    """Where everything is stored: a SQLAlchemy URL (default: a SQLite file next to this file)."""
+
+    url: str | None = None
+
+
+class AlertsConfig(_Strict):
+    """Alert topics, repetition and severity."""
+
+    prefix: str = "line-monitor"
+    source: str | None = None
+    repeat_every: float = 900.0
+    clear_after: Annotated[int, Field(ge=1, le=10_000)] = 5
+    severity: dict[str, Literal["info", "warning", "critical"]] = {}
+
+    @field_validator("repeat_every", mode="before")
+    @classmethod
+    def _duration(cls, value: object) -> object:
+        return parse_duration(value)
+
+    @field_validator("prefix")
+    @classmethod
+    def _prefix(cls, value: str) -> str:
+        if len(value) > 100 or not _PREFIX.match(value):
+            raise ValueError(
+                "the alert prefix is topic levels of letters, digits, '.', '_', '-' "
+                f"separated by '/', without wildcards, got {value!r}"
+            )
+        return value
+
+
 class Config(_Strict):
     """A whole configuration file."""
 
+    broker: BrokerConfig = BrokerConfig()
+    storage: StorageConfig = StorageConfig()
+    alerts: AlertsConfig = AlertsConfig()
     charts: Annotated[list[ChartConfig], Field(min_length=1)]
 
     def chart(self, chart_id: str) -> ChartConfig:
@@ -426,6 +525,16 @@ def _chart_issues(chart: ChartConfig, i: int) -> list[ConfigIssue]:
                 f"give limits.mean and limits.sigma, or limits.baseline (missing {missing})",
             )
         )
+    topic_names = set(_PLACEHOLDER.findall(chart.topic or ""))
+    missing_names = [name for name in chart.placeholders if name not in topic_names]
+    if missing_names:
+        issues.append(
+            ConfigIssue(
+                (*loc, "id"),
+                f"placeholder {{{missing_names[0]}}} of the chart id is not a level of its topic "
+                f"{chart.topic!r}; name the topic level the same way",
+            )
+        )
     if chart.cusum.head_start >= chart.cusum.h:
         issues.append(
             ConfigIssue((*loc, "cusum", "head_start"), f"head_start must be below h ({chart.cusum.h})")
@@ -436,7 +545,27 @@ def _chart_issues(chart: ChartConfig, i: int) -> list[ConfigIssue]:
 
 
 def _semantic_issues(config: Config) -> list[ConfigIssue]:
-    issues: list[ConfigIssue] = []
+    known_rules = {r.value for r in RuleId}
+    issues = [
+        ConfigIssue(("alerts", "severity", rule), f"unknown rule {rule!r}; allowed: {_RULE_NAMES}")
+        for rule in config.alerts.severity
+        if rule not in known_rules
+    ]
+    own = f"{config.alerts.prefix}/#"
+    for i, chart in enumerate(config.charts):
+        if chart.topic and overlaps(_PLACEHOLDER.sub("+", chart.topic), own):
+            issues.append(
+                ConfigIssue(
+                    ("charts", i, "topic"),
+                    f"this topic filter also takes the monitor's own messages under "
+                    f"'{config.alerts.prefix}/'; narrow it or choose another alerts.prefix",
+                )
+            )
+    broker = config.broker
+    if broker.password_env and broker.password_file:
+        issues.append(
+            ConfigIssue(("broker", "password_file"), "give password_env or password_file, not both")
+        )
     seen: dict[str, int] = {}
     for i, chart in enumerate(config.charts):
         if chart.id in seen:
@@ -473,7 +602,12 @@ def _pydantic_issues(error: ValidationError) -> list[ConfigIssue]:
     issues = []
     for item in error.errors(include_url=False):
         message = item["msg"]
-        if item["type"] == "extra_forbidden":
+        if item["type"] == "extra_forbidden" and item["loc"][-1] == "password":
+            message = (
+                "passwords never go in the configuration file; name an environment variable "
+                "with password_env or a file with password_file"
+            )
+        elif item["type"] == "extra_forbidden":
             message = "unknown field" + _suggestion(str(item["loc"][-1]))
         elif item["type"] == "missing":
             message = "required field is missing"
@@ -487,6 +621,11 @@ def _pydantic_issues(error: ValidationError) -> list[ConfigIssue]:
 def _known_keys() -> set[str]:
     keys: set[str] = set()
     models: list[type[BaseModel]] = [
+        BrokerConfig,
+        TlsConfig,
+        StorageConfig,
+        AlertsConfig,
+        PayloadConfig,
         Config,
         ChartConfig,
         SubgroupConfig,
@@ -553,3 +692,40 @@ def load_config(path: str | Path) -> Config:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigProblems(str(file), [ConfigIssue((), f"cannot read: {exc}")]) from None
     return load_config_text(text, str(file))
+
+
+# ---------------------------------------------------------------- secrets and paths
+
+
+def resolve_password(broker: BrokerConfig, environ: Mapping[str, str]) -> str | None:
+    """The broker password from the named environment variable or file; None if neither is set.
+
+    A relative ``password_file`` is looked up in ``$CREDENTIALS_DIRECTORY`` (systemd
+    ``LoadCredential=``) when that is set. The password is never logged or stored.
+
+    Raises:
+        ConfigError: the variable is not set, or the file cannot be read.
+    """
+    if broker.password_env:
+        value = environ.get(broker.password_env)
+        if value is None:
+            raise ConfigError(
+                f"broker.password_env names {broker.password_env!r}, but that environment variable is not set"
+            )
+        return value
+    if broker.password_file:
+        path = Path(broker.password_file)
+        if not path.is_absolute() and environ.get("CREDENTIALS_DIRECTORY"):
+            path = Path(environ["CREDENTIALS_DIRECTORY"]) / path
+        try:
+            return path.read_text(encoding="utf-8").rstrip("\r\n")
+        except OSError as exc:
+            raise ConfigError(f"cannot read broker.password_file {str(path)!r}: {exc.strerror}") from None
+    return None
+
+
+def storage_url(config: Config, config_path: Path) -> str:
+    """The configured storage URL, or a SQLite file ``monitor.db`` next to the configuration."""
+    if config.storage.url:
+        return config.storage.url
+    return f"sqlite:///{(config_path.parent / 'monitor.db').resolve()}"

@@ -60,5 +60,5 @@ def configure_logging(*, level: str = "info", stream: TextIO | None = None, json
 
 def get_logger(**bound: object) -> structlog.typing.FilteringBoundLogger:
     """A logger with ``bound`` context (for example ``chart=...``)."""
-    logger: structlog.typing.FilteringBoundLogger = structlog.get_logger().bind(**bound)
+    logger: structlog.typing.FilteringBoundLogger = structlog.get_logger(**bound)
     return logger

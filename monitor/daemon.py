@@ -1,0 +1,811 @@
+"""The daemon: MQTT in, subgroups, charts, storage, alerts out.
+
+Data flow (one direction)::
+
+    MqttLink -> decode -> route -> de-duplicate -> subgroups -> chart sets -> signals
+             -> alert trackers -> one store transaction (subgroups, signals, alerts, limits,
+                checkpoints) -> acknowledge the messages -> publish the alerts (outbox)
+
+One task reads and processes messages and commits them in groups (it also advances time
+windows when no message comes); one task publishes committed alerts until the broker
+confirms each, and the retained chart states; the MQTT link runs in its own task.
+
+A message is acknowledged only after everything it carried is committed, so a crash loses
+nothing. A message the broker sends again after a crash or a reconnect keeps its packet id, so
+it is recognised by (topic, packet id, payload digest) and counted once; when payloads carry a
+sequence number, readings whose sequence does not increase are dropped as duplicates too.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import hashlib
+import os
+import signal
+import sys
+import time
+from collections import Counter, OrderedDict
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import orjson
+
+from monitor.alerts import Alert, AlertSettings, AlertTracker, Severity, SignalContext, parse_ack, topics
+from monitor.config import ChartConfig, Config, resolve_password, storage_url
+from monitor.ingest import Decoded, PayloadError, PayloadMapping, Router, decode
+from monitor.logs import get_logger
+from monitor.mqtt import BrokerSettings, Incoming, MqttLink, PublishError, TlsSettings
+from monitor.spc import (
+    ChartSet,
+    ConfigError,
+    CountSubgrouper,
+    Reading,
+    ReadingError,
+    Signal,
+    StateError,
+    Subgroup,
+    WindowSubgrouper,
+    p_value,
+)
+from monitor.store import (
+    AlertRow,
+    CommitBatch,
+    LimitsRow,
+    SignalRow,
+    Store,
+    StoredAck,
+    StoreError,
+    SubgroupRow,
+)
+from monitor.topics import minimal_filters
+
+__all__ = ["ChartRuntime", "Daemon", "DaemonStats", "RedeliveryGuard", "run_daemon"]
+
+_log = get_logger(component="daemon")
+
+_STATE_SCHEMA = 1
+_LINK_CHECKPOINT = "@link/"  # checkpoint key prefix; '@' cannot start a chart id
+
+
+def _now_ms() -> int:
+    return int(time.time() * 1000)
+
+
+def _ms(seconds: float | None) -> int | None:
+    return None if seconds is None else round(seconds * 1000)
+
+
+# ---------------------------------------------------------------- counters
+
+
+@dataclass(slots=True)
+class DaemonStats:
+    """Counters of the daemon, for logs, health and metrics."""
+
+    messages: int = 0
+    readings: int = 0
+    duplicate_messages: int = 0
+    duplicate_readings: int = 0
+    unrouted: int = 0
+    rejected: Counter[str] = field(default_factory=Counter)
+    subgroups: int = 0
+    signals: int = 0
+    alerts: int = 0
+    commits: int = 0
+    commit_seconds: float = 0.0
+    store_failures: int = 0
+    acks_received: int = 0
+    acks_refused: int = 0
+    published_alerts: int = 0
+    publish_failures: int = 0
+
+
+# ---------------------------------------------------------------- redelivery
+
+
+def _digest(payload: bytes) -> str:
+    return hashlib.blake2b(payload, digest_size=8).hexdigest()
+
+
+class RedeliveryGuard:
+    """Identities of messages whose content is committed, to recognise the broker re-sending them.
+
+    A QoS 1 message the broker sends again (after our crash, or after a reconnect) keeps its
+    topic, packet id and payload. Identities of committed messages are kept (bounded) and the
+    newest are stored with every commit, so that a restart recognises the re-sent copies.
+    """
+
+    def __init__(self, limit: int = 200_000) -> None:
+        self.limit = limit
+        self._seen: OrderedDict[tuple[str, int, str], None] = OrderedDict()
+        self._recent: list[tuple[str, int, str]] = []
+        self._previous: list[tuple[str, int, str]] = []
+
+    @staticmethod
+    def identity(message: Incoming) -> tuple[str, int, str]:
+        """What identifies a re-sent message."""
+        return (message.topic, message.mid, _digest(message.payload))
+
+    def seen(self, message: Incoming) -> bool:
+        """Whether this message's content was committed already."""
+        return message.qos > 0 and self.identity(message) in self._seen
+
+    def remember(self, message: Incoming) -> None:
+        """Note a message whose content is in the batch being committed."""
+        if message.qos == 0:
+            return
+        key = self.identity(message)
+        self._seen[key] = None
+        self._recent.append(key)
+        while len(self._seen) > self.limit:
+            self._seen.popitem(last=False)
+
+    def checkpoint(self) -> dict[str, object]:
+        """The identities of this batch and the one before, to store with this batch."""
+        keys = self._previous + self._recent
+        self._previous, self._recent = self._recent, []
+        return {"schema": _STATE_SCHEMA, "messages": [list(k) for k in keys]}
+
+    def restore(self, state: Mapping[str, object]) -> None:
+        """Load the identities stored with the last commit."""
+        messages = state.get("messages")
+        if not isinstance(messages, list):
+            return
+        for item in messages:
+            if isinstance(item, list) and len(item) == 3:
+                topic, mid, digest = item
+                if isinstance(topic, str) and isinstance(mid, int) and isinstance(digest, str):
+                    self._seen[(topic, mid, digest)] = None
+
+
+# ---------------------------------------------------------------- one chart
+
+
+@dataclass(slots=True)
+class ChartOutput:
+    """What feeding readings to charts produced, waiting to be committed."""
+
+    subgroups: list[SubgroupRow] = field(default_factory=list)
+    signals: list[SignalRow] = field(default_factory=list)
+    alerts: list[Alert] = field(default_factory=list)
+    limits: list[LimitsRow] = field(default_factory=list)
+
+
+class ChartRuntime:
+    """Everything the daemon keeps for one chart: subgroup former, chart set, alert tracker."""
+
+    def __init__(self, chart_id: str, config: ChartConfig, alerts: AlertSettings) -> None:
+        self.chart_id = chart_id
+        self.config = config
+        self.spec = config.spec()
+        self.mapping = PayloadMapping(**config.payload.model_dump())
+        self.grouper: CountSubgrouper | WindowSubgrouper = config.subgrouper()
+        self.chart_set = ChartSet(self.spec)
+        self.alert_settings = alerts
+        self.tracker = AlertTracker(chart_id, alerts, collecting_baseline=self.spec.baseline is not None)
+        self.last_sequence: dict[str, int] = {}
+        self.limits_version = 0
+        self.readings = 0
+        self.duplicates = 0
+        self.dirty = True
+        self.status_dirty = True
+
+    # -- state
+
+    def to_state(self) -> dict[str, object]:
+        """The full state as plain JSON data (a checkpoint)."""
+        return {
+            "schema": _STATE_SCHEMA,
+            "template": self.config.id,
+            "grouper": self.grouper.to_state(),
+            "chart_set": self.chart_set.to_state(),
+            "tracker": self.tracker.to_state(),
+            "last_sequence": dict(self.last_sequence),
+            "limits_version": self.limits_version,
+            "readings": self.readings,
+            "duplicates": self.duplicates,
+        }
+
+    def restore(self, state: Mapping[str, object]) -> None:
+        """Continue from a checkpoint; raises StateError if it does not fit this configuration."""
+        if state.get("schema") != _STATE_SCHEMA:
+            raise StateError(f"checkpoint schema {state.get('schema')!r} is not {_STATE_SCHEMA}")
+        grouper_state = state.get("grouper")
+        set_state = state.get("chart_set")
+        tracker_state = state.get("tracker")
+        if (
+            not isinstance(grouper_state, dict)
+            or not isinstance(set_state, dict)
+            or not isinstance(tracker_state, dict)
+        ):
+            raise StateError("checkpoint lacks its parts")
+        kind = grouper_state.get("kind")
+        grouper: CountSubgrouper | WindowSubgrouper
+        if kind == "count_subgrouper" and isinstance(self.grouper, CountSubgrouper):
+            restored = CountSubgrouper.from_state(grouper_state)
+            if restored.size != self.grouper.size:
+                raise StateError("the subgroup size changed")
+            grouper = restored
+        elif kind == "window_subgrouper" and isinstance(self.grouper, WindowSubgrouper):
+            grouper = WindowSubgrouper.from_state(grouper_state)
+        else:
+            raise StateError("the subgrouping changed")
+        chart_set = ChartSet.from_state(self.spec, set_state)
+        tracker = AlertTracker.from_state(self.chart_id, self.alert_settings, tracker_state)
+        sequences = state.get("last_sequence")
+        self.grouper, self.chart_set, self.tracker = grouper, chart_set, tracker
+        if isinstance(sequences, dict):
+            self.last_sequence = {str(k): int(v) for k, v in sequences.items() if isinstance(v, int)}
+        for name in ("limits_version", "readings", "duplicates"):
+            value = state.get(name)
+            if isinstance(value, int):
+                setattr(self, name, value)
+        self.dirty = False
+
+    # -- readings
+
+    def accept_sequence(self, topic: str, decoded: Decoded) -> bool:
+        """False if the reading's sequence number does not increase on its topic (a duplicate)."""
+        if decoded.sequence is None:
+            return True
+        key = f"{topic}#{decoded.position}" if decoded.position else topic
+        last = self.last_sequence.get(key)
+        if last is not None and decoded.sequence <= last:
+            self.duplicates += 1
+            return False
+        self.last_sequence[key] = decoded.sequence
+        if len(self.last_sequence) > 10_000:
+            self.last_sequence.pop(next(iter(self.last_sequence)))
+        return True
+
+    def feed(self, readings: list[Reading], now_ms: int, out: ChartOutput) -> None:
+        """Add readings; charts every subgroup they complete."""
+        self.readings += len(readings)
+        self.dirty = True
+        for reading in readings:
+            made = self.grouper.add(reading)
+            if made is None:
+                continue
+            for subgroup in [made] if isinstance(made, Subgroup) else made:
+                self._chart(subgroup, now_ms, out)
+
+    def advance(self, now: float, out: ChartOutput) -> None:
+        """Close the time windows whose end (plus lateness) has passed."""
+        if isinstance(self.grouper, WindowSubgrouper):
+            closed = self.grouper.advance(now)
+            if closed:
+                self.dirty = True
+            for subgroup in closed:
+                self._chart(subgroup, round(now * 1000), out)
+
+    def _chart(self, subgroup: Subgroup, now_ms: int, out: ChartOutput) -> None:
+        chart_set = self.chart_set
+        signals = chart_set.update(subgroup)
+        index = chart_set.next_index - 1
+        if chart_set.monitoring and self.limits_version == 0:
+            self._new_limits(now_ms, out)
+        if not chart_set.monitoring:
+            self.status_dirty = True
+            return
+        points: dict[str, object] = {
+            kind.value: {
+                p.statistic.value: {"value": p.value, "center": p.center, "lower": p.lower, "upper": p.upper}
+                for p in chart_points
+            }
+            for kind, chart_points in chart_set.last_points.items()
+        }
+        out.subgroups.append(
+            SubgroupRow(
+                chart=self.chart_id,
+                index=index,
+                start_ms=_ms(subgroup.start),
+                end_ms=_ms(subgroup.end),
+                n=subgroup.n,
+                points=points,
+            )
+        )
+        contexts = [self._context(s, subgroup) for s in signals]
+        alerts = self.tracker.observe(signals, contexts, subgroup_index=index, now_ms=now_ms)
+        if alerts or signals:
+            self.status_dirty = True
+        out.alerts.extend(alerts)
+        active = self.tracker.active_alert_id
+        for signal_, context in zip(signals, contexts, strict=True):
+            out.signals.append(
+                SignalRow(
+                    chart=self.chart_id,
+                    subgroup=signal_.subgroup,
+                    kind=signal_.chart.value,
+                    statistic=signal_.statistic.value,
+                    rule=signal_.rule.value,
+                    side=signal_.side.value,
+                    value=signal_.value,
+                    center=signal_.center,
+                    lower=signal_.lower,
+                    upper=signal_.upper,
+                    z=signal_.z,
+                    p_value=context.p_value,
+                    method=context.p_value_method,
+                    alert_id=active,
+                )
+            )
+
+    def _context(self, signal_: Signal, subgroup: Subgroup) -> SignalContext:
+        n = subgroup.n
+        if signal_.statistic.value == "moving_range":
+            n = self.spec.moving_range_span
+        result = p_value(signal_, n=n, rules=self.spec.rules, limit_sigma=self.spec.limit_sigma)
+        return SignalContext(
+            chart_id=self.chart_id,
+            hint=self.config.hint,
+            limits_version=self.limits_version,
+            subgroup_start_ms=_ms(subgroup.start),
+            subgroup_end_ms=_ms(subgroup.end),
+            subgroup_size=subgroup.n,
+            p_value=result.value,
+            p_value_method=result.method,
+            parent_model=result.parent,
+            unit=self.config.unit or None,
+            name=self.config.title or None,
+        )
+
+    def _new_limits(self, now_ms: int, out: ChartOutput) -> None:
+        parameters = self.chart_set.parameters
+        if parameters is None:
+            return
+        self.limits_version += 1
+        estimate = self.chart_set.estimate
+        out.limits.append(
+            LimitsRow(
+                chart=self.chart_id,
+                version=self.limits_version,
+                mean=parameters.mean,
+                sigma=parameters.sigma,
+                source=parameters.source,
+                detail={} if estimate is None else dict(estimate.to_state()),
+                created_ms=now_ms,
+            )
+        )
+
+    def status(self, now_ms: int) -> dict[str, object]:
+        """The retained status message of this chart."""
+        body = dict(self.tracker.status(now_ms))
+        if not self.chart_set.monitoring:
+            body["state"] = "collecting_baseline"
+            plan = self.spec.baseline
+            body["baseline"] = {
+                "collected": self.chart_set.baseline_collected,
+                "needed": 0 if plan is None else plan.subgroups,
+            }
+        parameters = self.chart_set.parameters
+        body.update(
+            readings=self.readings,
+            subgroups=self.chart_set.next_index,
+            limits_version=self.limits_version,
+            mean=None if parameters is None else parameters.mean,
+            sigma=None if parameters is None else parameters.sigma,
+        )
+        return body
+
+
+# ---------------------------------------------------------------- the daemon
+
+
+@dataclass(slots=True)
+class _Pending:
+    output: ChartOutput = field(default_factory=ChartOutput)
+    messages: list[Incoming] = field(default_factory=list)
+
+    def empty(self) -> bool:
+        o = self.output
+        return not (self.messages or o.subgroups or o.signals or o.alerts or o.limits)
+
+
+class Daemon:
+    """The monitor daemon for one configuration.
+
+    Args:
+        config: the validated configuration.
+        config_path: where it was read from (the default SQLite file goes next to it).
+        environ: environment for secrets (the broker password).
+        max_batch: most messages per store transaction.
+        tick: seconds between time-window checks when no message comes.
+    """
+
+    def __init__(
+        self,
+        config: Config,
+        config_path: Path,
+        *,
+        environ: Mapping[str, str] | None = None,
+        max_batch: int = 2000,
+        tick: float = 0.5,
+    ) -> None:
+        env = os.environ if environ is None else environ
+        missing_topic = [c.id for c in config.charts if not c.topic]
+        if missing_topic:
+            raise ConfigError(
+                f"the daemon needs a topic for every chart; none for {', '.join(missing_topic)}"
+            )
+        self.config = config
+        self.config_path = config_path
+        self.url = storage_url(config, config_path)
+        a = config.alerts
+        self.alert_settings = AlertSettings(
+            prefix=a.prefix,
+            source=a.source or f"urn:line-monitor:{config.broker.client_id}",
+            repeat_after_ms=round(a.repeat_every * 1000),
+            clear_after_subgroups=a.clear_after,
+            severity={**AlertSettings().severity, **{k: Severity(v) for k, v in a.severity.items()}},
+        )
+        b = config.broker
+        tls = None
+        if b.tls is not None:
+            tls = TlsSettings(b.tls.ca, b.tls.cert, b.tls.key, b.tls.verify_hostname)
+        self.broker = BrokerSettings(
+            host=b.host,
+            port=b.port,
+            client_id=b.client_id,
+            username=b.username,
+            password=resolve_password(b, env),
+            tls=tls,
+            qos=b.qos,
+            persistent_session=b.persistent_session,
+            keepalive=b.keepalive,
+            reconnect_max=b.reconnect_max,
+        )
+        self.templates = {c.id: c for c in config.charts}
+        self.router = Router([(c.id, c.topic or "") for c in config.charts])
+        self.ack_filter = f"{a.prefix}/ack/#"
+        self.subscriptions = minimal_filters([*self.router.filters(), self.ack_filter])
+        self.presence_topic = f"{a.prefix}/daemon/{b.client_id}"
+        self.max_batch = max_batch
+        self.tick = tick
+        self.stats = DaemonStats()
+        self.runtimes: dict[str, ChartRuntime] = {}
+        self.guard = RedeliveryGuard()
+        self.store: Store | None = None
+        self.link: MqttLink | None = None
+        self._checkpoints: dict[str, dict[str, object]] = {}
+        self._publish_wake = asyncio.Event()
+        self._stopping = asyncio.Event()
+        self.ready = asyncio.Event()
+
+    # -- charts
+
+    def runtime(self, chart_id: str, template: ChartConfig) -> ChartRuntime:
+        """The runtime of a chart, created on first use (from its checkpoint if there is one)."""
+        existing = self.runtimes.get(chart_id)
+        if existing is not None:
+            return existing
+        runtime = ChartRuntime(chart_id, template, self.alert_settings)
+        stored = self._checkpoints.pop(chart_id, None)
+        if stored is not None:
+            try:
+                runtime.restore(stored)
+                _log.info("checkpoint_restored", chart=chart_id, subgroups=runtime.chart_set.next_index)
+            except (StateError, ReadingError, ValueError, KeyError) as exc:
+                runtime = ChartRuntime(chart_id, template, self.alert_settings)
+                _log.warning("checkpoint_discarded", chart=chart_id, reason=str(exc))
+        self.runtimes[chart_id] = runtime
+        return runtime
+
+    # -- processing
+
+    def handle(self, message: Incoming, pending: _Pending) -> None:
+        """Process one chart message into pending output (nothing is committed here)."""
+        self.stats.messages += 1
+        pending.messages.append(message)
+        if self.guard.seen(message):
+            self.stats.duplicate_messages += 1
+            _log.info("message_duplicated", topic=message.topic, mid=message.mid)
+            return
+        routing = self.router.resolve(message.topic)
+        for refused in routing.rejected:
+            self.stats.rejected[refused.reason] += 1
+            _log.warning(
+                "topic_refused", topic=message.topic, chart=refused.template_id, reason=refused.reason
+            )
+        routes = routing.routes
+        if not routes:
+            self.stats.unrouted += 1
+            return
+        now_ms = _now_ms()
+        decoded_by_mapping: dict[PayloadMapping, list[Decoded] | PayloadError] = {}
+        for route in routes:
+            template = self.templates[route.template_id]
+            runtime = self.runtime(route.chart_id, template)
+            decoded = decoded_by_mapping.get(runtime.mapping)
+            if decoded is None:
+                try:
+                    decoded = decode(message.payload, runtime.mapping, message.received_at)
+                except PayloadError as exc:
+                    decoded = exc
+                decoded_by_mapping[runtime.mapping] = decoded
+            if isinstance(decoded, PayloadError):
+                self.stats.rejected[decoded.reason] += 1
+                _log.warning(
+                    "reading_rejected",
+                    chart=route.chart_id,
+                    topic=message.topic,
+                    reason=decoded.reason,
+                    detail=decoded.detail,
+                )
+                continue
+            readings = []
+            for item in decoded:
+                if not runtime.accept_sequence(message.topic, item):
+                    self.stats.duplicate_readings += 1
+                    continue
+                readings.append(Reading(item.value, item.time, item.exposure))
+            self.stats.readings += len(readings)
+            before = len(pending.output.subgroups)
+            runtime.feed(readings, now_ms, pending.output)
+            self.stats.subgroups += len(pending.output.subgroups) - before
+
+    async def _handle_ack(self, message: Incoming) -> None:
+        """An acknowledgement from a crew on ``<prefix>/ack/<chart>``."""
+        chart_id = message.topic[len(self.ack_filter) - 1 :]
+        store = self.store
+        runtime = self.runtimes.get(chart_id)
+        try:
+            request = parse_ack(message.payload, chart_id)
+        except ReadingError as exc:
+            self.stats.acks_refused += 1
+            _log.warning("ack_refused", chart=chart_id, reason=str(exc))
+            return
+        if runtime is None or store is None or await store.alert_chart(request.alert_id) != chart_id:
+            self.stats.acks_refused += 1
+            _log.warning(
+                "ack_refused", chart=chart_id, alert=request.alert_id, reason="no such alert on this chart"
+            )
+            return
+        at_ms = _now_ms()
+        stored = await store.record_ack(
+            StoredAck(request.alert_id, chart_id, request.by, request.note or "", at_ms)
+        )
+        if stored and runtime.tracker.acknowledge(request.alert_id, request.by, at_ms):
+            runtime.dirty = runtime.status_dirty = True
+            self._publish_wake.set()
+        self.stats.acks_received += 1
+        _log.info("alert_acknowledged", chart=chart_id, alert=request.alert_id, by=request.by)
+
+    async def _commit(self, pending: _Pending) -> None:
+        """Store everything pending in one transaction, then acknowledge its messages."""
+        store, link = self.store, self.link
+        if store is None or link is None:
+            return
+        for message in pending.messages:
+            self.guard.remember(message)
+        checkpoints = {rt.chart_id: rt.to_state() for rt in self.runtimes.values() if rt.dirty}
+        checkpoints[_LINK_CHECKPOINT + self.broker.client_id] = self.guard.checkpoint()
+        out = pending.output
+        batch = CommitBatch(
+            subgroups=out.subgroups,
+            signals=out.signals,
+            alerts=[AlertRow(a.id, a.chart_id, a.kind.value, a.created_ms, a.event) for a in out.alerts],
+            limits=out.limits,
+            checkpoints=checkpoints,
+        )
+        delay = 0.2
+        while True:
+            started = time.perf_counter()
+            try:
+                await store.commit(batch)
+                break
+            except StoreError as exc:
+                self.stats.store_failures += 1
+                _log.error("store_commit_failed", error=str(exc), retry_in=round(delay, 1))
+                await asyncio.sleep(delay)
+                delay = min(delay * 2, 10.0)
+        self.stats.commits += 1
+        self.stats.commit_seconds += time.perf_counter() - started
+        for runtime in self.runtimes.values():
+            runtime.dirty = False
+        for message in pending.messages:
+            link.ack(message)
+        self.stats.signals += len(out.signals)
+        self.stats.alerts += len(out.alerts)
+        for alert in out.alerts:
+            _log.info("alert_raised", chart=alert.chart_id, alert=alert.id, kind=alert.kind.value)
+        if out.alerts or any(rt.status_dirty for rt in self.runtimes.values()):
+            self._publish_wake.set()
+
+    async def _process_loop(self) -> None:
+        link = self.link
+        if link is None:
+            return
+        while not self._stopping.is_set():
+            pending = _Pending()
+            try:
+                async with asyncio.timeout(self.tick):
+                    first = await link.next_message()
+            except TimeoutError:
+                first = None
+            messages = ([first] if first is not None else []) + link.take_ready(self.max_batch - 1)
+            for message in messages:
+                if message.topic.startswith(self.ack_filter[:-1]):
+                    await self._handle_ack(message)
+                    link.ack(message)
+                    continue
+                self.handle(message, pending)
+            now = time.time()
+            for runtime in list(self.runtimes.values()):
+                runtime.advance(now, pending.output)
+            if not pending.empty():
+                await self._commit(pending)
+
+    async def _publish_loop(self) -> None:
+        store, link = self.store, self.link
+        if store is None or link is None:
+            return
+        while True:
+            with contextlib.suppress(TimeoutError):
+                async with asyncio.timeout(1.0):
+                    await self._publish_wake.wait()
+            self._publish_wake.clear()
+            if not link.connected:
+                continue
+            await self.publish_pending(store, link)
+
+    async def publish_pending(self, store: Store, link: MqttLink) -> None:
+        """Publish unsent alerts (oldest first) and changed chart states; stop at the first failure."""
+        while True:
+            rows = await store.pending_alerts(500)
+            if not rows:
+                break
+            sent: list[str] = []
+            failed = False
+            for row in rows:
+                alert_topic, _, _ = topics(self.alert_settings, row.chart)
+                try:
+                    await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
+                except PublishError as exc:
+                    self.stats.publish_failures += 1
+                    await store.note_attempt([row.id])
+                    _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
+                    failed = True
+                    break
+                sent.append(row.id)
+            if sent:
+                await store.mark_sent(sent, _now_ms())
+                self.stats.published_alerts += len(sent)
+            if failed or len(rows) < 500:
+                break
+        now_ms = _now_ms()
+        for runtime in list(self.runtimes.values()):
+            if not runtime.status_dirty:
+                continue
+            _, status_topic, _ = topics(self.alert_settings, runtime.chart_id)
+            try:
+                await link.publish(status_topic, orjson.dumps(runtime.status(now_ms)), qos=1, retain=True)
+            except PublishError:
+                break
+            runtime.status_dirty = False
+
+    # -- life cycle
+
+    def describe_start(self) -> list[str]:
+        """What the daemon prints at start: subscriptions, storage and charts owned."""
+        filters = [f for f in self.subscriptions if f != self.ack_filter]
+        expanding = [c.id for c in self.config.charts if c.placeholders]
+        lines = [
+            f"line-monitor: broker {self.broker.describe()}",
+            f"  subscribed to: {', '.join(filters)} (and {self.ack_filter} for acknowledgements)",
+            f"  storing in: {_safe_url(self.url)}",
+            f"  charts owned: {len(self.config.charts)} configured"
+            + (f" ({len(expanding)} expand per topic level)" if expanding else ""),
+            (
+                f"  alerts on {self.alert_settings.prefix}/alerts/<chart>, "
+                f"states on {self.alert_settings.prefix}/status/<chart>"
+            ),
+        ]
+        return lines
+
+    async def run(self, *, announce: Callable[[str], None] | None = None) -> None:
+        """Run until :meth:`stop`; then flush, checkpoint, publish what is pending and disconnect."""
+        store = await Store.open(self.url)
+        self.store = store
+        try:
+            self._checkpoints = await store.load_checkpoints()
+            link_state = self._checkpoints.pop(_LINK_CHECKPOINT + self.broker.client_id, None)
+            if link_state is not None:
+                self.guard.restore(link_state)
+            for chart in self.config.charts:
+                if not chart.placeholders:
+                    self.runtime(chart.id, chart)
+            for chart_id, state in list(self._checkpoints.items()):
+                template = self.templates.get(str(state.get("template")))
+                if template is not None and template.placeholders:
+                    self.runtime(chart_id, template)
+            offline = orjson.dumps({"online": False, "client_id": self.broker.client_id})
+            online = orjson.dumps({"online": True, "client_id": self.broker.client_id})
+            link = MqttLink(
+                self.broker,
+                self.subscriptions,
+                will=(self.presence_topic, offline),
+                online=online,
+            )
+            self.link = link
+            link.on_connect(self._publish_wake.set)
+            for line in self.describe_start():
+                (announce or _stderr)(line)
+            _log.info(
+                "daemon_started",
+                broker=self.broker.describe(),
+                subscriptions=self.router.filters(),
+                storage=_safe_url(self.url),
+                charts=len(self.config.charts),
+            )
+            async with asyncio.TaskGroup() as group:
+                link_task = group.create_task(link.run(), name="monitor.mqtt.link")
+                publisher = group.create_task(self._publish_loop(), name="monitor.alerts.publisher")
+                self.ready.set()
+                await self._process_loop()
+                # stopping: everything taken is committed; publish what is left, then leave
+                await self._final_flush(store, link)
+                publisher.cancel()
+                link.stop()
+                link_task.cancel()
+        finally:
+            await store.close()
+            _log.info("daemon_stopped", **_stats_summary(self.stats))
+
+    async def _final_flush(self, store: Store, link: MqttLink) -> None:
+        pending = _Pending()
+        for runtime in self.runtimes.values():
+            runtime.dirty = True
+        await self._commit(pending)
+        with contextlib.suppress(TimeoutError, PublishError):
+            async with asyncio.timeout(5.0):
+                if link.connected:
+                    await self.publish_pending(store, link)
+                    await link.publish(
+                        self.presence_topic,
+                        orjson.dumps({"online": False, "client_id": self.broker.client_id}),
+                        qos=1,
+                        retain=True,
+                    )
+
+    def stop(self) -> None:
+        """Ask the daemon to finish: stop taking messages, commit, publish, disconnect."""
+        self._stopping.set()
+
+
+def _safe_url(url: str) -> str:
+    """A storage URL without its password."""
+    if "@" not in url or "://" not in url:
+        return url
+    scheme, rest = url.split("://", 1)
+    credentials, host = rest.rsplit("@", 1)
+    user = credentials.split(":", 1)[0]
+    return f"{scheme}://{user}:***@{host}"
+
+
+def _stderr(line: str) -> None:
+    print(line, file=sys.stderr, flush=True)
+
+
+def _stats_summary(stats: DaemonStats) -> dict[str, object]:
+    return {
+        "messages": stats.messages,
+        "readings": stats.readings,
+        "duplicates": stats.duplicate_messages + stats.duplicate_readings,
+        "rejected": sum(stats.rejected.values()),
+        "subgroups": stats.subgroups,
+        "signals": stats.signals,
+        "alerts": stats.alerts,
+        "commits": stats.commits,
+    }
+
+
+async def run_daemon(config: Config, config_path: Path) -> int:
+    """Run the daemon until SIGTERM or SIGINT; return the exit status."""
+    daemon = Daemon(config, config_path)
+    loop = asyncio.get_running_loop()
+    for number in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(number, daemon.stop)
+    await daemon.run()
+    return 0

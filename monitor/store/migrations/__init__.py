@@ -1,0 +1,1 @@
+"""Alembic migrations of the monitor's database (script location ``monitor.store:migrations``)."""
