@@ -32,7 +32,16 @@ from pathlib import Path
 
 import orjson
 
-from monitor.alerts import Alert, AlertSettings, AlertTracker, Severity, SignalContext, parse_ack, topics
+from monitor.alerts import (
+    AckError,
+    Alert,
+    AlertSettings,
+    AlertTracker,
+    Severity,
+    SignalContext,
+    parse_ack,
+    topics,
+)
 from monitor.config import ChartConfig, Config, resolve_password, storage_url
 from monitor.ingest import Decoded, PayloadError, PayloadMapping, Router, decode
 from monitor.logs import get_logger
@@ -282,11 +291,12 @@ class ChartRuntime:
 
     def _chart(self, subgroup: Subgroup, now_ms: int, out: ChartOutput) -> None:
         chart_set = self.chart_set
+        charted = chart_set.monitoring  # the subgroup that completes a baseline is not charted
         signals = chart_set.update(subgroup)
         index = chart_set.next_index - 1
         if chart_set.monitoring and self.limits_version == 0:
             self._new_limits(now_ms, out)
-        if not chart_set.monitoring:
+        if not charted:
             self.status_dirty = True
             return
         points: dict[str, object] = {
@@ -552,7 +562,7 @@ class Daemon:
         runtime = self.runtimes.get(chart_id)
         try:
             request = parse_ack(message.payload, chart_id)
-        except ReadingError as exc:
+        except AckError as exc:
             self.stats.acks_refused += 1
             _log.warning("ack_refused", chart=chart_id, reason=str(exc))
             return

@@ -1,0 +1,255 @@
+"""Test harness for the daemon against the real broker and databases.
+
+The daemon runs as its own process (``python -m monitor run``), exactly as operators run it.
+Readings go in through ``mosquitto_pub`` and alerts come out through ``mosquitto_sub``: real
+clients from outside the project. Every test gets its own topics, alert prefix and client id,
+and the broker sessions it leaves are wiped afterwards.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import shutil
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import threading
+import time
+import uuid
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+BROKER = ("127.0.0.1", 1883)
+DAEMON_START_TIMEOUT = 30.0
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on now."""
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+class PrivateBroker:
+    """A Mosquitto of the test's own, on its own port, sized for the test (stoppable, restartable).
+
+    Its offline queue is large: the stock configuration keeps only 1000 QoS 1 messages per
+    offline session and drops newer ones, which a test of a stopped daemon would mistake for loss.
+    """
+
+    def __init__(self, workdir: Path, port: int | None = None) -> None:
+        self.port = port or free_port()
+        self.conf = workdir / f"mosquitto-{self.port}.conf"
+        self.conf.write_text(
+            f"listener {self.port} 127.0.0.1\nallow_anonymous true\npersistence false\n"
+            "max_queued_messages 1000000\nmax_inflight_messages 100\nset_tcp_nodelay true\n"
+        )
+        self.process: subprocess.Popen[bytes] | None = None
+
+    def start(self) -> PrivateBroker:
+        binary = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+        self.process = subprocess.Popen(
+            [binary, "-c", str(self.conf)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+        )
+        deadline = time.monotonic() + 10
+        while time.monotonic() < deadline:
+            with (
+                contextlib.suppress(OSError),
+                socket.create_connection(("127.0.0.1", self.port), timeout=0.5),
+            ):
+                return self
+            time.sleep(0.05)
+        raise AssertionError(f"private Mosquitto did not start on port {self.port}")
+
+    def stop(self) -> None:
+        if self.process is not None:
+            self.process.terminate()
+            self.process.wait(timeout=10)
+            self.process = None
+
+
+def unique(prefix: str = "t") -> str:
+    """A short unique name for topics, prefixes and client ids."""
+    return f"{prefix}{uuid.uuid4().hex[:10]}"
+
+
+def publish(topic: str, payloads: Iterable[str], *, qos: int = 1, port: int = BROKER[1]) -> None:
+    """Publish each payload as one message with mosquitto_pub (one process, in order)."""
+    lines = "\n".join(payloads) + "\n"
+    subprocess.run(
+        ["mosquitto_pub", "-h", BROKER[0], "-p", str(port), "-t", topic, "-q", str(qos), "-l"],
+        input=lines.encode(),
+        check=True,
+        timeout=60,
+    )
+
+
+def wipe_session(client_id: str, port: int = BROKER[1]) -> None:
+    """Remove the broker's persistent session of ``client_id`` (connect once with a clean session)."""
+    subprocess.run(
+        [
+            "mosquitto_sub",
+            "-h",
+            BROKER[0],
+            "-p",
+            str(port),
+            "-i",
+            client_id,
+            "-t",
+            f"wipe/{client_id}",
+            "-W",
+            "1",
+            "-C",
+            "1",
+        ],
+        check=False,
+        capture_output=True,
+        timeout=10,
+    )
+
+
+class Subscriber:
+    """mosquitto_sub in the background, collecting (topic, payload) of every message."""
+
+    def __init__(self, topic_filter: str, *, port: int = BROKER[1]) -> None:
+        self.messages: list[tuple[str, str]] = []
+        self._lock = threading.Lock()
+        self._process = subprocess.Popen(
+            ["mosquitto_sub", "-h", BROKER[0], "-p", str(port), "-t", topic_filter, "-q", "1", "-v"],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.DEVNULL,
+        )
+        self._thread = threading.Thread(target=self._read, daemon=True)
+        self._thread.start()
+        time.sleep(0.3)  # let the subscription reach the broker
+
+    def _read(self) -> None:
+        stream = self._process.stdout
+        if stream is None:
+            return
+        for raw in stream:
+            topic, _, payload = raw.decode().rstrip("\n").partition(" ")
+            with self._lock:
+                self.messages.append((topic, payload))
+
+    def wait_for(self, count: int, timeout: float = 20.0, *, where: str = "") -> list[tuple[str, str]]:
+        """At least ``count`` messages (whose topic contains ``where``), waiting up to ``timeout``."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            found = self.matching(where)
+            if len(found) >= count:
+                return found
+            time.sleep(0.05)
+        return self.matching(where)
+
+    def matching(self, where: str = "") -> list[tuple[str, str]]:
+        with self._lock:
+            return [m for m in self.messages if where in m[0]]
+
+    def close(self) -> None:
+        self._process.terminate()
+        self._process.wait(timeout=10)
+        self._thread.join(timeout=10)
+        if self._process.stdout is not None:
+            self._process.stdout.close()
+
+
+@dataclass
+class DaemonProcess:
+    """One ``monitor run`` process with its log."""
+
+    config: Path
+    log: Path
+    process: subprocess.Popen[bytes] | None = None
+    env: dict[str, str] = field(default_factory=dict)
+    stderr: str = ""
+
+    def start(self) -> DaemonProcess:
+        environment = {**os.environ, **self.env}
+        with self.log.open("ab") as log:
+            self.process = subprocess.Popen(
+                [sys.executable, "-m", "monitor", "run", "--config", str(self.config), "--log-level", "info"],
+                stdout=log,
+                stderr=subprocess.PIPE,
+                env=environment,
+            )
+        self.wait_log("mqtt_connected", DAEMON_START_TIMEOUT)
+        return self
+
+    def log_text(self) -> str:
+        return self.log.read_text(errors="replace") if self.log.exists() else ""
+
+    def events(self) -> list[dict[str, object]]:
+        out = []
+        for line in self.log_text().splitlines():
+            try:
+                item = json.loads(line)
+            except ValueError:
+                continue
+            if isinstance(item, dict):
+                out.append(item)
+        return out
+
+    def wait_log(self, event: str, timeout: float, count: int = 1) -> None:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if sum(1 for e in self.events() if e.get("event") == event) >= count:
+                return
+            if self.process is not None and self.process.poll() is not None:
+                raise AssertionError(
+                    f"daemon exited early: {self._drain_stderr()}\n{self.log_text()[-3000:]}"
+                )
+            time.sleep(0.05)
+        raise AssertionError(f"no {event!r} in the daemon log within {timeout} s:\n{self.log_text()[-3000:]}")
+
+    def _drain_stderr(self) -> str:
+        process = self.process
+        if process is not None and process.stderr is not None and process.poll() is not None:
+            self.stderr += process.stderr.read().decode(errors="replace")
+            process.stderr.close()
+        return self.stderr
+
+    def stop(self, timeout: float = 30.0) -> int:
+        """SIGTERM and wait: the daemon flushes, checkpoints and disconnects."""
+        if self.process is None:
+            return 0
+        self.process.send_signal(signal.SIGTERM)
+        code = self.process.wait(timeout=timeout)
+        self._drain_stderr()
+        self.process = None
+        return code
+
+    def kill(self) -> None:
+        """SIGKILL: no chance to flush anything."""
+        if self.process is None:
+            return
+        self.process.kill()
+        self.process.wait(timeout=10)
+        self._drain_stderr()
+        self.process = None
+
+
+def wait_until(predicate: object, timeout: float = 20.0, step: float = 0.1) -> bool:
+    """Poll ``predicate()`` until true or ``timeout``."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():  # type: ignore[operator]
+            return True
+        time.sleep(step)
+    return bool(predicate())  # type: ignore[operator]
+
+
+def sqlite_rows(path: Path, query: str, *args: object) -> list[tuple[object, ...]]:
+    """Rows of a query on the daemon's SQLite file (read-only, outside the daemon)."""
+    if not path.exists():
+        return []
+    with sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=10) as db:
+        try:
+            return list(db.execute(query, args))
+        except sqlite3.OperationalError:
+            return []

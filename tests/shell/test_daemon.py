@@ -1,0 +1,385 @@
+"""The daemon end to end, against the real Mosquitto and databases, with real MQTT clients.
+
+Readings go in with mosquitto_pub and alerts come out through mosquitto_sub. Alerts are
+checked against the CloudEvents 1.0 specification (required attributes id, source,
+specversion "1.0", type; time as RFC 3339).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+import subprocess
+import sys
+import textwrap
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import psycopg
+import pytest
+from psycopg import sql
+
+from tests.shell.harness import (
+    DaemonProcess,
+    PrivateBroker,
+    Subscriber,
+    publish,
+    sqlite_rows,
+    unique,
+    wait_until,
+    wipe_session,
+)
+
+pytestmark = pytest.mark.broker
+
+RFC3339 = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?(Z|[+-]\d{2}:\d{2})$")
+
+
+class Plant:
+    """Names and files of one test's private plant: topics, prefix, client id, database."""
+
+    def __init__(self, tmp_path: Path, *, storage_url: str | None = None, port: int = 1883) -> None:
+        self.port = port
+        self.name = unique("p")
+        self.prefix = f"test/{self.name}-monitor"
+        self.client_id = f"monitor-{self.name}"
+        self.dir = tmp_path
+        self.db = tmp_path / "monitor.db"
+        self.storage_url = storage_url
+        self.config = tmp_path / "plant.yaml"
+        self.log = tmp_path / "daemon.log"
+
+    def topic(self, chart: str) -> str:
+        return f"test/{self.name}/{chart}"
+
+    def write(self, charts: str, *, extra: str = "") -> Path:
+        storage = f"storage: {{url: {json.dumps(self.storage_url)}}}\n" if self.storage_url else ""
+        text = (
+            f"broker: {{host: 127.0.0.1, port: {self.port}, client_id: {self.client_id}}}\n"
+            f"{storage}"
+            f"alerts: {{prefix: {self.prefix}, repeat_every: 1h, clear_after: 3}}\n"
+            f"{extra}"
+            "charts:\n" + textwrap.indent(textwrap.dedent(charts).format(root=f"test/{self.name}"), "  ")
+        )
+        self.config.write_text(text)
+        return self.config
+
+    def daemon(self, **env: str) -> DaemonProcess:
+        return DaemonProcess(self.config, self.log, env=env)
+
+
+@pytest.fixture
+def plant(tmp_path: Path) -> Iterator[Plant]:
+    made = Plant(tmp_path)
+    yield made
+    wipe_session(made.client_id)
+
+
+PRESS = """\
+- id: press/thickness
+  title: Tile thickness
+  unit: mm
+  topic: "{root}/press/thickness"
+  payload: {{format: json, value: v, timestamp: ts, sequence: seq}}
+  subgroup: {{size: 5}}
+  kinds: [xbar_r]
+  limits: {{mean: 8.0, sigma: 0.04}}
+  rules: western-electric
+  hint: Check the die inserts.
+"""
+
+
+def readings(values: list[float], *, start_seq: int = 1, start_s: float = 1_767_600_000.0) -> list[str]:
+    """JSON payloads with a timestamp and a sequence number each."""
+    return [json.dumps({"v": v, "ts": start_s + i, "seq": start_seq + i}) for i, v in enumerate(values)]
+
+
+def cloudevent_errors(event: dict[str, object]) -> list[str]:
+    """Violations of the CloudEvents 1.0 required attributes and JSON format (spec.md, json-format.md)."""
+    errors = []
+    for name in ("id", "source", "specversion", "type"):
+        if not isinstance(event.get(name), str) or not event[name]:
+            errors.append(f"{name} must be a non-empty string")
+    if event.get("specversion") != "1.0":
+        errors.append("specversion must be '1.0'")
+    if "time" in event and not RFC3339.match(str(event["time"])):
+        errors.append("time must be RFC 3339")
+    for name in event:
+        if not re.fullmatch(r"[a-z0-9]{1,20}", name) and name not in ("data", "data_base64"):
+            errors.append(f"attribute name {name!r} is not lowercase alphanumeric")
+    return errors
+
+
+def test_an_out_of_control_subgroup_reaches_a_real_subscriber_as_a_cloudevent(plant):
+    """A subgroup far above its limits becomes one CloudEvents alert on <prefix>/alerts/<chart>."""
+    plant.write(PRESS)
+    watcher = Subscriber(f"{plant.prefix}/alerts/#")
+    daemon = plant.daemon().start()
+    try:
+        publish(
+            plant.topic("press/thickness"),
+            readings([8.01, 7.98, 8.02, 8.00, 7.99, 8.09, 8.11, 8.10, 8.08, 8.12]),
+        )
+        received = watcher.wait_for(1)
+    finally:
+        daemon.stop()
+        watcher.close()
+    assert len(received) == 1
+    topic, payload = received[0]
+    assert topic == f"{plant.prefix}/alerts/press/thickness"
+    event = json.loads(payload)
+    assert cloudevent_errors(event) == []
+    data = event["data"]
+    assert data["rule"] == "beyond_limits"
+    assert data["side"] == "upper"
+    assert data["statistic"] == "mean"
+    assert 0.0 <= data["p_value"] <= 1.0
+    assert data["p_value_method"] == "closed form"
+    assert "8.1" in data["message"]
+    assert data["hint"] == "Check the die inserts."
+    assert "not a safety system" in data["advisory"]
+    # the statistic: mean of the second subgroup, against 8 + 3 * 0.04 / sqrt(5)
+    assert data["value"] == pytest.approx(8.10)
+    assert data["upper"] == pytest.approx(8.0 + 3 * 0.04 / math.sqrt(5))
+
+
+def test_start_prints_subscriptions_storage_and_charts(plant):
+    """At start the daemon says what it subscribed to, where it stores and how many charts it owns."""
+    plant.write(PRESS)
+    daemon = plant.daemon().start()
+    code = daemon.stop()
+    assert code == 0
+    assert f"subscribed to: {plant.topic('press/thickness')}" in daemon.stderr
+    assert f"storing in: sqlite:///{plant.db.resolve()}" in daemon.stderr
+    assert "charts owned: 1" in daemon.stderr
+
+
+def test_stopping_mid_stream_and_restarting_counts_every_reading_once(plant):
+    """SIGTERM with a partial subgroup, readings sent while down, restart: subgroups continue exactly."""
+    plant.write(PRESS)
+    values = [8.0 + 0.001 * k for k in range(30)]
+    daemon = plant.daemon().start()
+    publish(plant.topic("press/thickness"), readings(values[:13]))
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 2)
+    assert daemon.stop() == 0
+    # published while the daemon is down: the persistent session keeps them
+    publish(plant.topic("press/thickness"), readings(values[13:22], start_seq=14, start_s=1_767_600_013.0))
+    daemon = plant.daemon().start()
+    publish(plant.topic("press/thickness"), readings(values[22:], start_seq=23, start_s=1_767_600_022.0))
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 6)
+    daemon.stop()
+    rows = sqlite_rows(plant.db, "select idx, n, points from subgroups order by idx")
+    assert [r[0] for r in rows] == [0, 1, 2, 3, 4, 5]
+    means = [json.loads(str(r[2]))["xbar_r"]["mean"]["value"] for r in rows]
+    expected = [sum(values[5 * i : 5 * i + 5]) / 5 for i in range(6)]
+    assert means == pytest.approx(expected, abs=1e-12)
+
+
+def test_a_crash_loses_nothing_and_counts_nothing_twice(tmp_path):
+    """kill -9 in the middle of a QoS 1 stream, restart: every reading in exactly one subgroup."""
+    broker = PrivateBroker(tmp_path).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(
+        """\
+        - id: line/gauge
+          topic: "{root}/line/gauge"
+          payload: {{format: json, value: v, sequence: seq}}
+          subgroup: {{size: 1}}
+          kinds: [individuals_mr]
+          limits: {{mean: 500, sigma: 1000}}
+          rules: none
+        """
+    )
+    total = 3000
+    daemon = plant.daemon().start()
+    sender = subprocess.Popen(
+        [
+            "mosquitto_pub",
+            "-h",
+            "127.0.0.1",
+            "-p",
+            str(broker.port),
+            "-t",
+            plant.topic("line/gauge"),
+            "-q",
+            "1",
+            "-l",
+        ],
+        stdin=subprocess.PIPE,
+    )
+    assert sender.stdin is not None
+    sender.stdin.write("".join(json.dumps({"v": k, "seq": k}) + "\n" for k in range(1, total + 1)).encode())
+    sender.stdin.close()
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) > 200, timeout=30)
+    daemon.kill()
+    sender.wait(timeout=60)
+    daemon = plant.daemon().start()
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) >= total, timeout=60)
+    daemon.stop()
+    broker.stop()
+    rows = sqlite_rows(plant.db, "select points from subgroups order by idx")
+    values = [json.loads(str(r[0]))["individuals_mr"]["individual"]["value"] for r in rows]
+    assert sorted(values) == [float(k) for k in range(1, total + 1)]
+    assert values == sorted(values)  # in order, too
+
+
+def test_an_acknowledgement_is_stored_and_shown_in_the_retained_status(plant):
+    """A crew acknowledges the alert on the ack topic: stored with who and when, shown in the status."""
+    plant.write(PRESS)
+    watcher = Subscriber(f"{plant.prefix}/#")
+    daemon = plant.daemon().start()
+    try:
+        publish(plant.topic("press/thickness"), readings([8.1, 8.12, 8.11, 8.09, 8.13]))
+        (alert,) = watcher.wait_for(1, where="/alerts/")
+        alert_id = json.loads(alert[1])["id"]
+        ack_topic = f"{plant.prefix}/ack/press/thickness"
+        publish(
+            ack_topic,
+            [json.dumps({"alert_id": alert_id, "by": "night shift, M. Okafor", "note": "die changed"})],
+        )
+        publish(ack_topic, [json.dumps({"alert_id": "no-such-alert", "by": "someone"}), "not json"])
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select alert_id from acks")) == 1)
+        assert wait_until(
+            lambda: any(
+                json.loads(p).get("acknowledged_by") == "night shift, M. Okafor"
+                for t, p in watcher.matching("/status/press/thickness")
+            )
+        )
+    finally:
+        daemon.stop()
+        watcher.close()
+    rows = sqlite_rows(plant.db, "select alert_id, chart, acked_by, note from acks")
+    assert rows == [(alert_id, "press/thickness", "night shift, M. Okafor", "die changed")]
+    refused = [e for e in daemon.events() if e.get("event") == "ack_refused"]
+    assert len(refused) == 2
+
+
+def test_bad_payloads_are_counted_and_logged_and_the_others_are_charted(plant):
+    """Malformed messages are logged with their reason; the good readings around them still count."""
+    plant.write(PRESS)
+    daemon = plant.daemon().start()
+    good = readings([8.0, 8.01, 7.99, 8.02, 7.98])
+    publish(
+        plant.topic("press/thickness"),
+        [good[0], "not json", good[1], '{"v": "eight"}', good[2], good[3], "{}", good[4]],
+    )
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 1)
+    daemon.stop()
+    reasons = sorted(str(e["reason"]) for e in daemon.events() if e.get("event") == "reading_rejected")
+    assert reasons == ["missing_field", "not_a_number", "not_json"]
+
+
+def test_a_baseline_is_estimated_stored_as_limits_version_one_and_then_charted(plant):
+    """A chart with a Phase I baseline collects it, stores the limits as version 1, then charts."""
+    plant.write(
+        """\
+        - id: cell/width
+          topic: "{root}/cell/width"
+          subgroup: {{size: 4}}
+          kinds: [xbar_s]
+          limits: {{baseline: {{subgroups: 5}}}}
+          rules: none
+        """
+    )
+    values = [10.0 + 0.1 * ((k * 7) % 5 - 2) for k in range(28)]
+    daemon = plant.daemon().start()
+    publish(plant.topic("cell/width"), [f"{v:.3f}" for v in values])
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 2)
+    daemon.stop()
+    limits = sqlite_rows(plant.db, "select version, mean, source from limits where chart = 'cell/width'")
+    assert len(limits) == 1
+    version, mean, source = limits[0]
+    assert (version, source) == (1, "baseline")
+    assert mean == pytest.approx(sum(values[:20]) / 20)
+    assert [r[0] for r in sqlite_rows(plant.db, "select idx from subgroups order by idx")] == [5, 6]
+
+
+def test_a_wildcard_level_expands_into_one_chart_per_machine(plant):
+    """A {machine} placeholder in the topic makes one chart per machine, each with its own state."""
+    plant.write(
+        """\
+        - id: kiln/{{machine}}/temperature
+          topic: "{root}/{{machine}}/temperature"
+          subgroup: {{size: 1}}
+          kinds: [individuals_mr]
+          limits: {{mean: 1180, sigma: 2.5}}
+          rules: none
+        """
+    )
+    daemon = plant.daemon().start()
+    publish(f"test/{plant.name}/kiln-1/temperature", ["1180.5", "1179.0"])
+    publish(f"test/{plant.name}/kiln-2/temperature", ["1181.0"])
+    # a topic level that would not make a safe chart id is refused, not charted
+    publish(f"test/{plant.name}/kiln 3/temperature", ["1180.0"])
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 3)
+    daemon.wait_log("topic_refused", 10)
+    daemon.stop()
+    charts = sqlite_rows(plant.db, "select chart, count(*) from subgroups group by chart order by chart")
+    assert charts == [("kiln/kiln-1/temperature", 2), ("kiln/kiln-2/temperature", 1)]
+
+
+def test_the_password_comes_from_the_environment_and_is_never_logged(plant):
+    """broker.password_env names the variable; the password never appears in logs or output."""
+    secret = f"pw-{uuid.uuid4().hex}"
+    plant.write(PRESS)
+    text = plant.config.read_text().replace(
+        f"client_id: {plant.client_id}}}",
+        f"client_id: {plant.client_id}, username: monitor, password_env: TEST_BROKER_PW}}",
+    )
+    plant.config.write_text(text)
+    daemon = plant.daemon(TEST_BROKER_PW=secret).start()
+    daemon.stop()
+    assert secret not in daemon.log_text()
+    assert secret not in daemon.stderr
+    assert secret not in plant.config.read_text()
+
+
+def test_an_invalid_configuration_is_one_clear_message_not_a_traceback(tmp_path):
+    """`monitor run` with a broken file exits 1 and names file, line and field."""
+    config = tmp_path / "broken.yaml"
+    config.write_text(
+        "broker: {port: 99999}\ncharts:\n  - id: a\n    kinds: [xbar_r]\n    limits: {mean: 1, sigma: 1}\n"
+    )
+    result = subprocess.run(
+        [sys.executable, "-m", "monitor", "run", "--config", str(config)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert result.returncode == 1
+    assert f"{config}:1: broker.port: Input should be less than or equal to 65535" in result.stderr
+    assert "Traceback" not in result.stderr
+
+
+@pytest.mark.db
+def test_the_daemon_stores_in_postgresql_by_url(tmp_path):
+    """With a PostgreSQL URL everything lands in PostgreSQL (psycopg 3), schema made by migrations."""
+    name = f"monitor_daemon_test_{uuid.uuid4().hex[:12]}"
+    admin = "host=127.0.0.1 port=5432 user=postgres dbname=postgres"
+    with psycopg.connect(admin, autocommit=True) as connection:
+        connection.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
+    plant = Plant(tmp_path, storage_url=f"postgresql://postgres@127.0.0.1:5432/{name}")
+    try:
+        plant.write(PRESS)
+        watcher = Subscriber(f"{plant.prefix}/alerts/#")
+        daemon = plant.daemon().start()
+        publish(
+            plant.topic("press/thickness"), readings([8.0, 8.01, 7.99, 8.0, 8.02, 8.2, 8.21, 8.19, 8.2, 8.22])
+        )
+        received = watcher.wait_for(1)
+        daemon.stop()
+        watcher.close()
+        assert len(received) == 1
+        with psycopg.connect(f"host=127.0.0.1 port=5432 user=postgres dbname={name}") as connection:
+            subgroups = connection.execute("select count(*) from subgroups").fetchone()
+            alerts = connection.execute("select count(*), count(sent_ms) from alerts").fetchone()
+        assert subgroups == (2,)
+        assert alerts == (1, 1)
+    finally:
+        wipe_session(plant.client_id)
+        with psycopg.connect(admin, autocommit=True) as connection:
+            connection.execute(
+                sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(sql.Identifier(name))
+            )
