@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import IO
 
 from monitor.alerts import ADVISORY
-from monitor.config import ChartConfig, Config, ConfigProblems, load_config
+from monitor.config import ChartConfig, Config, ConfigProblems, load_config, storage_url
 from monitor.replay import DataError, ReplaySummary, replay
 from monitor.spc import ChartKind, MonitorError, constants
 
@@ -86,10 +86,19 @@ def cmd_check(args: argparse.Namespace) -> int:
     """Validate a configuration and describe each chart."""
     config = _load(args.config)
     summary = _check_summary(config)
+    b, a = config.broker, config.alerts
+    daemon = {
+        "broker": f"{b.host}:{b.port} as {b.client_id}" + (" with TLS" if b.tls else ""),
+        "storage": storage_url(config, Path(args.config)),
+        "alerts": f"{a.prefix}/alerts/<chart>, states on {a.prefix}/status/<chart>, "
+        f"acknowledgements on {a.prefix}/ack/<chart>",
+    }
     if args.json:
-        print(json.dumps({"valid": True, "charts": summary, "advisory": ADVISORY}, indent=2))
+        print(json.dumps({"valid": True, **daemon, "charts": summary, "advisory": ADVISORY}, indent=2))
         return EXIT_OK
     print(f"{args.config}: valid, {len(summary)} chart(s)")
+    for key, value in daemon.items():
+        print(f"  {key + ':':9s}{value}")
     for item in summary:
         print(f"\n{item['id']}" + (f"  (topic {item['topic']})" if item["topic"] else ""))
         print(f"  subgroups: {item['subgroup']}")

@@ -75,6 +75,8 @@ __all__ = ["ChartRuntime", "Daemon", "DaemonStats", "RedeliveryGuard", "run_daem
 _log = get_logger(component="daemon")
 
 _STATE_SCHEMA = 1
+STOP_GRACE = 15.0
+"""Seconds a stopping daemon keeps retrying an unreachable store before it leaves."""
 _LINK_CHECKPOINT = "@link/"  # checkpoint key prefix; '@' cannot start a chart id
 
 
@@ -390,8 +392,17 @@ class ChartRuntime:
                 "needed": 0 if plan is None else plan.subgroups,
             }
         parameters = self.chart_set.parameters
+        if isinstance(self.grouper, WindowSubgrouper):
+            window = self.grouper.stats
+            body["windows"] = {
+                "late_readings": window.late,
+                "overflow_readings": window.overflow,
+                "short_windows": window.short_windows,
+                "short_window_readings": window.short_readings,
+            }
         body.update(
             readings=self.readings,
+            duplicates=self.duplicates,
             subgroups=self.chart_set.next_index,
             limits_version=self.limits_version,
             mean=None if parameters is None else parameters.mean,
@@ -481,6 +492,7 @@ class Daemon:
         self._checkpoints: dict[str, dict[str, object]] = {}
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
+        self._stopped_at: float | None = None
         self.ready = asyncio.Event()
 
     # -- charts
@@ -582,11 +594,17 @@ class Daemon:
         self.stats.acks_received += 1
         _log.info("alert_acknowledged", chart=chart_id, alert=request.alert_id, by=request.by)
 
-    async def _commit(self, pending: _Pending) -> None:
-        """Store everything pending in one transaction, then acknowledge its messages."""
+    async def _commit(self, pending: _Pending) -> bool:
+        """Store everything pending in one transaction, then acknowledge its messages.
+
+        While the store is unreachable this retries with capped backoff (intake waits meanwhile,
+        so memory stays bounded and the broker keeps the unacknowledged messages). When the
+        daemon is stopping it gives up after ``STOP_GRACE`` seconds without acknowledging:
+        the broker sends those messages again at the next start, so nothing is lost.
+        """
         store, link = self.store, self.link
         if store is None or link is None:
-            return
+            return False
         for message in pending.messages:
             self.guard.remember(message)
         checkpoints = {rt.chart_id: rt.to_state() for rt in self.runtimes.values() if rt.dirty}
@@ -607,6 +625,11 @@ class Daemon:
                 break
             except StoreError as exc:
                 self.stats.store_failures += 1
+                if self._stopped_at is not None and time.monotonic() - self._stopped_at > STOP_GRACE:
+                    _log.error(
+                        "store_unreachable_at_stop", error=str(exc), unacknowledged=len(pending.messages)
+                    )
+                    return False
                 _log.error("store_commit_failed", error=str(exc), retry_in=round(delay, 1))
                 await asyncio.sleep(delay)
                 delay = min(delay * 2, 10.0)
@@ -622,6 +645,7 @@ class Daemon:
             _log.info("alert_raised", chart=alert.chart_id, alert=alert.id, kind=alert.kind.value)
         if out.alerts or any(rt.status_dirty for rt in self.runtimes.values()):
             self._publish_wake.set()
+        return True
 
     async def _process_loop(self) -> None:
         link = self.link
@@ -781,6 +805,8 @@ class Daemon:
 
     def stop(self) -> None:
         """Ask the daemon to finish: stop taking messages, commit, publish, disconnect."""
+        if self._stopped_at is None:
+            self._stopped_at = time.monotonic()
         self._stopping.set()
 
 

@@ -347,6 +347,7 @@ def test_an_invalid_configuration_is_one_clear_message_not_a_traceback(tmp_path)
         capture_output=True,
         text=True,
         timeout=60,
+        check=False,
     )
     assert result.returncode == 1
     assert f"{config}:1: broker.port: Input should be less than or equal to 65535" in result.stderr
