@@ -384,3 +384,37 @@ def test_the_daemon_stores_in_postgresql_by_url(tmp_path):
             connection.execute(
                 sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(sql.Identifier(name))
             )
+
+
+def test_the_daemon_reconnects_after_the_broker_restarts_and_keeps_its_charts(tmp_path):
+    """Stop and restart the broker: the daemon reconnects, re-subscribes and its charts continue."""
+    broker = PrivateBroker(tmp_path).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(PRESS)
+    daemon = plant.daemon().start()
+    try:
+        topic = plant.topic("press/thickness")
+        publish(topic, readings([8.0, 8.01, 7.99, 8.0, 8.02, 7.98, 8.01]), port=broker.port)
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 1)
+        broker.stop()
+        daemon.wait_log("mqtt_connection_lost", 20)
+        broker.start()
+        daemon.wait_log("mqtt_connected", 30, count=2)
+        watcher = Subscriber(f"{plant.prefix}/alerts/#", port=broker.port)
+        # the partial subgroup (2 readings) survived; 3 more complete it, 5 more are out of control
+        publish(
+            topic,
+            readings([8.0, 8.02, 7.99, 8.2, 8.21, 8.19, 8.2, 8.22], start_seq=8, start_s=1_767_600_007.0),
+            port=broker.port,
+        )
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 3)
+        received = watcher.wait_for(1)
+        watcher.close()
+    finally:
+        daemon.stop()
+        broker.stop()
+    rows = sqlite_rows(plant.db, "select points from subgroups order by idx")
+    second = json.loads(str(rows[1][0]))["xbar_r"]["mean"]["value"]
+    assert second == pytest.approx((7.98 + 8.01 + 8.0 + 8.02 + 7.99) / 5)
+    assert len(received) == 1
+    assert json.loads(received[0][1])["data"]["subgroup"]["index"] == 2
