@@ -35,6 +35,71 @@ def free_port() -> int:
         return int(probe.getsockname()[1])
 
 
+@dataclass(frozen=True)
+class Certificates:
+    """A throw-away CA with a server certificate for 127.0.0.1 and a client certificate."""
+
+    ca: Path
+    server_cert: Path
+    server_key: Path
+    client_cert: Path
+    client_key: Path
+
+
+def make_certificates(workdir: Path, *, client_name: str = "line-monitor") -> Certificates:
+    """Generate the certificates with the openssl command-line tool (valid one day)."""
+
+    def openssl(*args: str) -> None:
+        subprocess.run(["openssl", *args], check=True, capture_output=True, timeout=60)
+
+    ca_key, ca = workdir / "ca.key", workdir / "ca.pem"
+    openssl(
+        "req",
+        "-x509",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-keyout",
+        str(ca_key),
+        "-out",
+        str(ca),
+        "-days",
+        "1",
+        "-subj",
+        "/CN=Line Monitor Test CA",
+    )
+    made = {}
+    for name, subject, extension in (
+        ("server", "/CN=127.0.0.1", "subjectAltName=IP:127.0.0.1"),
+        ("client", f"/CN={client_name}", "extendedKeyUsage=clientAuth"),
+    ):
+        key, csr, cert = workdir / f"{name}.key", workdir / f"{name}.csr", workdir / f"{name}.pem"
+        ext = workdir / f"{name}.ext"
+        ext.write_text(extension + "\n")
+        openssl(
+            "req", "-newkey", "rsa:2048", "-nodes", "-keyout", str(key), "-out", str(csr), "-subj", subject
+        )
+        openssl(
+            "x509",
+            "-req",
+            "-in",
+            str(csr),
+            "-CA",
+            str(ca),
+            "-CAkey",
+            str(ca_key),
+            "-CAcreateserial",
+            "-out",
+            str(cert),
+            "-days",
+            "1",
+            "-extfile",
+            str(ext),
+        )
+        made[name] = (cert, key)
+    return Certificates(ca, made["server"][0], made["server"][1], made["client"][0], made["client"][1])
+
+
 class PrivateBroker:
     """A Mosquitto of the test's own, on its own port, sized for the test (stoppable, restartable).
 
@@ -42,11 +107,19 @@ class PrivateBroker:
     offline session and drops newer ones, which a test of a stopped daemon would mistake for loss.
     """
 
-    def __init__(self, workdir: Path, port: int | None = None) -> None:
+    def __init__(self, workdir: Path, port: int | None = None, *, tls: Certificates | None = None) -> None:
         self.port = port or free_port()
         self.conf = workdir / f"mosquitto-{self.port}.conf"
+        listener = f"listener {self.port} 127.0.0.1\n"
+        if tls is not None:
+            listener += (
+                f"cafile {tls.ca}\ncertfile {tls.server_cert}\nkeyfile {tls.server_key}\n"
+                "require_certificate true\nuse_identity_as_username true\n"
+            )
+        # run as root, Mosquitto would switch to its own user, which cannot read the test's files
+        keep_user = "user root\n" if os.geteuid() == 0 else ""
         self.conf.write_text(
-            f"listener {self.port} 127.0.0.1\nallow_anonymous true\npersistence false\n"
+            f"{listener}{keep_user}allow_anonymous true\npersistence false\n"
             "max_queued_messages 1000000\nmax_inflight_messages 100\nset_tcp_nodelay true\n"
         )
         self.process: subprocess.Popen[bytes] | None = None
@@ -169,7 +242,7 @@ class DaemonProcess:
     env: dict[str, str] = field(default_factory=dict)
     stderr: str = ""
 
-    def start(self) -> DaemonProcess:
+    def start(self, *, wait_connected: float = DAEMON_START_TIMEOUT) -> DaemonProcess:
         environment = {**os.environ, **self.env}
         with self.log.open("ab") as log:
             self.process = subprocess.Popen(
@@ -178,7 +251,7 @@ class DaemonProcess:
                 stderr=subprocess.PIPE,
                 env=environment,
             )
-        self.wait_log("mqtt_connected", DAEMON_START_TIMEOUT)
+        self.wait_log("mqtt_connected", wait_connected)
         return self
 
     def log_text(self) -> str:

@@ -25,6 +25,7 @@ from tests.shell.harness import (
     DaemonProcess,
     PrivateBroker,
     Subscriber,
+    make_certificates,
     publish,
     sqlite_rows,
     unique,
@@ -418,3 +419,73 @@ def test_the_daemon_reconnects_after_the_broker_restarts_and_keeps_its_charts(tm
     assert second == pytest.approx((7.98 + 8.01 + 8.0 + 8.02 + 7.99) / 5)
     assert len(received) == 1
     assert json.loads(received[0][1])["data"]["subgroup"]["index"] == 2
+
+
+def test_the_daemon_connects_over_tls_with_a_client_certificate(tmp_path):
+    """A TLS listener that requires client certificates (made here with openssl) accepts the daemon."""
+    certs = make_certificates(tmp_path)
+    broker = PrivateBroker(tmp_path, tls=certs).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(PRESS)
+    text = plant.config.read_text().replace(
+        f"client_id: {plant.client_id}}}",
+        f"client_id: {plant.client_id}, tls: {{ca: {certs.ca}, cert: {certs.client_cert}, key: {certs.client_key}}}}}",
+    )
+    plant.config.write_text(text)
+    daemon = plant.daemon().start()
+    try:
+        subprocess.run(
+            [
+                "mosquitto_pub",
+                "-h",
+                "127.0.0.1",
+                "-p",
+                str(broker.port),
+                "--cafile",
+                str(certs.ca),
+                "--cert",
+                str(certs.client_cert),
+                "--key",
+                str(certs.client_key),
+                "-t",
+                plant.topic("press/thickness"),
+                "-q",
+                "1",
+                "-l",
+            ],
+            input="\n".join(readings([8.0, 8.01, 7.99, 8.0, 8.02])).encode() + b"\n",
+            check=True,
+            timeout=30,
+        )
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 1)
+    finally:
+        daemon.stop()
+        broker.stop()
+    assert "mqtts://127.0.0.1" in daemon.stderr
+
+
+def test_an_untrusted_broker_certificate_is_refused_and_the_daemon_keeps_trying(tmp_path):
+    """With a CA that did not sign the broker's certificate the daemon refuses it, logs why, and retries."""
+    certs = make_certificates(tmp_path)
+    (tmp_path / "other").mkdir()
+    other = make_certificates(tmp_path / "other")
+    broker = PrivateBroker(tmp_path, tls=certs).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(PRESS)
+    text = plant.config.read_text().replace(
+        f"client_id: {plant.client_id}}}",
+        f"client_id: {plant.client_id}, tls: {{ca: {other.ca}, cert: {certs.client_cert}, key: {certs.client_key}}}}}",
+    )
+    plant.config.write_text(text)
+    daemon = plant.daemon()
+    try:
+        with pytest.raises(AssertionError, match="mqtt_connected"):
+            daemon.start(wait_connected=4.0)  # never connects
+        failures = [e for e in daemon.events() if e.get("event") == "mqtt_connect_failed"]
+        assert len(failures) >= 2
+        assert "CERTIFICATE_VERIFY_FAILED" in str(failures[0].get("error"))
+        assert daemon.process is not None
+        assert daemon.process.poll() is None
+    finally:
+        daemon.stop()
+        broker.stop()
