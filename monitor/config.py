@@ -303,6 +303,7 @@ class BrokerConfig(_Strict):
     persistent_session: bool = True
     keepalive: Annotated[int, Field(ge=5, le=3600)] = 30
     reconnect_max: float = 30.0
+    max_buffered_messages: Annotated[int, Field(ge=10, le=10_000_000)] = 10_000
 
     @field_validator("reconnect_max", mode="before")
     @classmethod

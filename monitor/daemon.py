@@ -26,9 +26,10 @@ import signal
 import sys
 import time
 from collections import Counter, OrderedDict
-from collections.abc import Callable, Mapping
+from collections.abc import Awaitable, Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypeVar
 
 import orjson
 
@@ -73,6 +74,7 @@ from monitor.topics import minimal_filters
 __all__ = ["ChartRuntime", "Daemon", "DaemonStats", "RedeliveryGuard", "run_daemon"]
 
 _log = get_logger(component="daemon")
+_T = TypeVar("_T")
 
 _STATE_SCHEMA = 1
 STOP_GRACE = 15.0
@@ -578,21 +580,39 @@ class Daemon:
             self.stats.acks_refused += 1
             _log.warning("ack_refused", chart=chart_id, reason=str(exc))
             return
-        if runtime is None or store is None or await store.alert_chart(request.alert_id) != chart_id:
+        if runtime is None or store is None:
+            self.stats.acks_refused += 1
+            _log.warning("ack_refused", chart=chart_id, alert=request.alert_id, reason="no such chart")
+            return
+        owner = await self._retrying("reading an alert", lambda: store.alert_chart(request.alert_id))
+        if owner != chart_id:
             self.stats.acks_refused += 1
             _log.warning(
                 "ack_refused", chart=chart_id, alert=request.alert_id, reason="no such alert on this chart"
             )
             return
         at_ms = _now_ms()
-        stored = await store.record_ack(
-            StoredAck(request.alert_id, chart_id, request.by, request.note or "", at_ms)
-        )
+        ack = StoredAck(request.alert_id, chart_id, request.by, request.note or "", at_ms)
+        stored = await self._retrying("storing an acknowledgement", lambda: store.record_ack(ack))
         if stored and runtime.tracker.acknowledge(request.alert_id, request.by, at_ms):
             runtime.dirty = runtime.status_dirty = True
             self._publish_wake.set()
         self.stats.acks_received += 1
         _log.info("alert_acknowledged", chart=chart_id, alert=request.alert_id, by=request.by)
+
+    async def _retrying(self, what: str, operation: Callable[[], Awaitable[_T]]) -> _T:
+        """Run a store operation, retrying with capped backoff while the store is unreachable."""
+        delay = 0.2
+        while True:
+            try:
+                return await operation()
+            except StoreError as exc:
+                self.stats.store_failures += 1
+                if self._stopped_at is not None and time.monotonic() - self._stopped_at > STOP_GRACE:
+                    raise
+                _log.error("store_operation_failed", operation=what, error=str(exc), retry_in=round(delay, 1))
+                await asyncio.sleep(delay)
+                delay = min(delay * 2, 10.0)
 
     async def _commit(self, pending: _Pending) -> bool:
         """Store everything pending in one transaction, then acknowledge its messages.
@@ -682,7 +702,10 @@ class Daemon:
             self._publish_wake.clear()
             if not link.connected:
                 continue
-            await self.publish_pending(store, link)
+            try:
+                await self.publish_pending(store, link)
+            except StoreError as exc:  # the outbox keeps them; try again at the next wake
+                _log.error("store_read_failed", error=str(exc))
 
     async def publish_pending(self, store: Store, link: MqttLink) -> None:
         """Publish unsent alerts (oldest first) and changed chart states; stop at the first failure."""
@@ -761,6 +784,7 @@ class Daemon:
                 self.subscriptions,
                 will=(self.presence_topic, offline),
                 online=online,
+                queue_size=self.config.broker.max_buffered_messages,
             )
             self.link = link
             link.on_connect(self._publish_wake.set)

@@ -17,6 +17,7 @@ import socket
 import sqlite3
 import subprocess
 import sys
+import tempfile
 import threading
 import time
 import uuid
@@ -326,3 +327,85 @@ def sqlite_rows(path: Path, query: str, *args: object) -> list[tuple[object, ...
             return list(db.execute(query, args))
         except sqlite3.OperationalError:
             return []
+
+
+class PrivatePostgres:
+    """A PostgreSQL cluster of the test's own (initdb in a temporary directory), to stop and start at will."""
+
+    def __init__(self) -> None:
+        versions = sorted(
+            Path("/usr/lib/postgresql").glob("*/bin/initdb"), key=lambda p: int(p.parent.parent.name)
+        )
+        if not versions:
+            raise AssertionError(
+                "PostgreSQL server binaries are not installed (scripts/services installs them)"
+            )
+        self.bin = versions[-1].parent
+        self.dir = Path(tempfile.mkdtemp(prefix="monitor-pg-"))
+        self.data = self.dir / "data"
+        self.port = free_port()
+        self.dir.chmod(0o777)
+        self._run("initdb", "-D", str(self.data), "-U", "postgres", "--auth=trust", "-E", "UTF8")
+
+    @property
+    def url(self) -> str:
+        return f"postgresql://postgres@127.0.0.1:{self.port}/postgres"
+
+    def _run(self, tool: str, *args: str) -> None:
+        command = [str(self.bin / tool), *args]
+        if os.geteuid() == 0:  # the server refuses to run as root
+            command = ["runuser", "-u", "postgres", "--", *command]
+        subprocess.run(command, check=True, capture_output=True, timeout=120)
+
+    def start(self) -> PrivatePostgres:
+        options = f"-p {self.port} -k {self.dir} -c listen_addresses=127.0.0.1 -c fsync=off"
+        self._run("pg_ctl", "-D", str(self.data), "-o", options, "-l", str(self.dir / "log"), "-w", "start")
+        return self
+
+    def stop(self) -> None:
+        self._run("pg_ctl", "-D", str(self.data), "-m", "fast", "-w", "stop")
+
+    def remove(self) -> None:
+        with contextlib.suppress(subprocess.CalledProcessError):
+            self.stop()
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+class SteadyPublisher:
+    """Publishes JSON readings {"v": k, "seq": k}, k = 1..total, at a steady rate with QoS 1 (paho, threaded)."""
+
+    def __init__(self, port: int, topic: str, total: int, *, rate: float) -> None:
+        import paho.mqtt.client as mqtt  # noqa: PLC0415 - only these tests publish from Python
+
+        self.topic, self.total, self.rate = topic, total, rate
+        self.sent = 0
+        self._stop = threading.Event()
+        self._client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=unique("sender-"))
+        self._client.connect("127.0.0.1", port)
+        self._client.loop_start()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def start(self) -> SteadyPublisher:
+        self._thread.start()
+        return self
+
+    def _run(self) -> None:
+        started = time.monotonic()
+        for k in range(1, self.total + 1):
+            if self._stop.is_set():
+                return
+            pause = started + k / self.rate - time.monotonic()
+            if pause > 0:
+                time.sleep(pause)
+            info = self._client.publish(self.topic, json.dumps({"v": k, "seq": k}), qos=1)
+            info.wait_for_publish(timeout=30)
+            self.sent = k
+
+    def join(self, timeout: float) -> None:
+        self._thread.join(timeout=timeout)
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(timeout=10)
+        self._client.loop_stop()
+        self._client.disconnect()
