@@ -192,6 +192,19 @@ class PayloadConfig(_Strict):
     max_bytes: Annotated[int, Field(ge=16, le=64_000_000)] = 1_000_000
 
 
+class TimestampPolicy(_Strict):
+    """What the daemon does with readings whose event time is far from when they arrive."""
+
+    max_ahead: float | None = 600.0
+    max_behind: float | None = None
+    outside: Literal["reject", "receive_time"] = "reject"
+
+    @field_validator("max_ahead", "max_behind", mode="before")
+    @classmethod
+    def _duration(cls, value: object) -> object:
+        return None if value is None else parse_duration(value)
+
+
 class ChartConfig(_Strict):
     """One monitored characteristic (or, with placeholders, one per matched topic level)."""
 
@@ -209,6 +222,14 @@ class ChartConfig(_Strict):
     cusum: CusumConfig = CusumConfig()
     moving_range_span: Annotated[int, Field(ge=2, le=100)] = 2
     hint: Annotated[str, Field(max_length=2000)] = ""
+    readings_every: float | None = None
+    flood_factor: Annotated[float, Field(gt=1, le=1000)] = 5.0
+    timestamps: TimestampPolicy = TimestampPolicy()
+
+    @field_validator("readings_every", mode="before")
+    @classmethod
+    def _every(cls, value: object) -> object:
+        return None if value is None else parse_duration(value)
 
     @field_validator("id")
     @classmethod
@@ -329,6 +350,7 @@ class AlertsConfig(_Strict):
 
     prefix: str = "line-monitor"
     source: str | None = None
+    dead_letters: bool = False
     repeat_every: float = 900.0
     clear_after: Annotated[int, Field(ge=1, le=10_000)] = 5
     severity: dict[str, Literal["info", "warning", "critical"]] = {}
@@ -627,6 +649,7 @@ def _known_keys() -> set[str]:
         StorageConfig,
         AlertsConfig,
         PayloadConfig,
+        TimestampPolicy,
         Config,
         ChartConfig,
         SubgroupConfig,

@@ -19,13 +19,14 @@ sequence number, readings whose sequence does not increase are dropped as duplic
 from __future__ import annotations
 
 import asyncio
+import base64
 import contextlib
 import hashlib
 import os
 import signal
 import sys
 import time
-from collections import Counter, OrderedDict
+from collections import Counter, OrderedDict, deque
 from collections.abc import Awaitable, Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -77,6 +78,8 @@ _log = get_logger(component="daemon")
 _T = TypeVar("_T")
 
 _STATE_SCHEMA = 1
+RATE_WINDOW = 10.0
+"""Seconds over which a chart's reading rate is compared with its configured rate."""
 STOP_GRACE = 15.0
 """Seconds a stopping daemon keeps retrying an unreachable store before it leaves."""
 _LINK_CHECKPOINT = "@link/"  # checkpoint key prefix; '@' cannot start a chart id
@@ -113,6 +116,9 @@ class DaemonStats:
     acks_refused: int = 0
     published_alerts: int = 0
     publish_failures: int = 0
+    floods: int = 0
+    dead_letters: int = 0
+    dead_letters_dropped: int = 0
 
 
 # ---------------------------------------------------------------- redelivery
@@ -202,6 +208,11 @@ class ChartRuntime:
         self.limits_version = 0
         self.readings = 0
         self.duplicates = 0
+        self.floods = 0
+        self.last_minute_readings = 0
+        self._window_start = 0.0
+        self._window_count = 0
+        self._flood_noted = False
         self.dirty = True
         self.status_dirty = True
 
@@ -272,6 +283,38 @@ class ChartRuntime:
         if len(self.last_sequence) > 10_000:
             self.last_sequence.pop(next(iter(self.last_sequence)))
         return True
+
+    def event_time(self, decoded: Decoded, received_at: float) -> float | None:
+        """The reading's event time under the chart's timestamp policy (None: refused)."""
+        policy = self.config.timestamps
+        ahead = decoded.time - received_at
+        if (policy.max_ahead is not None and ahead > policy.max_ahead) or (
+            policy.max_behind is not None and -ahead > policy.max_behind
+        ):
+            return received_at if policy.outside == "receive_time" else None
+        return decoded.time
+
+    @property
+    def expected_per_minute(self) -> float | None:
+        """Readings a minute the configuration expects (from ``readings_every``)."""
+        every = self.config.readings_every
+        return None if not every else 60.0 / every
+
+    def note_rate(self, count: int, now: float) -> bool:
+        """Count readings in windows of RATE_WINDOW seconds; True once per window over the flood factor."""
+        if now - self._window_start >= RATE_WINDOW:
+            self._window_start, self._window_count, self._flood_noted = now, 0, False
+        self._window_count += count
+        expected = self.expected_per_minute
+        if expected is None or self._flood_noted:
+            return False
+        if self._window_count > self.config.flood_factor * expected * RATE_WINDOW / 60.0:
+            self._flood_noted = True
+            self.last_minute_readings = round(self._window_count * 60.0 / RATE_WINDOW)
+            self.floods += 1
+            self.status_dirty = True
+            return True
+        return False
 
     def feed(self, readings: list[Reading], now_ms: int, out: ChartOutput) -> None:
         """Add readings; charts every subgroup they complete."""
@@ -405,6 +448,7 @@ class ChartRuntime:
         body.update(
             readings=self.readings,
             duplicates=self.duplicates,
+            floods=self.floods,
             subgroups=self.chart_set.next_index,
             limits_version=self.limits_version,
             mean=None if parameters is None else parameters.mean,
@@ -492,6 +536,7 @@ class Daemon:
         self.store: Store | None = None
         self.link: MqttLink | None = None
         self._checkpoints: dict[str, dict[str, object]] = {}
+        self._dead_letters: deque[tuple[str, dict[str, object]]] = deque(maxlen=1000)
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
         self._stopped_at: float | None = None
@@ -532,6 +577,7 @@ class Daemon:
             _log.warning(
                 "topic_refused", topic=message.topic, chart=refused.template_id, reason=refused.reason
             )
+            self._dead_letter(message, None, refused.reason, refused.detail)
         routes = routing.routes
         if not routes:
             self.stats.unrouted += 1
@@ -557,17 +603,68 @@ class Daemon:
                     reason=decoded.reason,
                     detail=decoded.detail,
                 )
+                self._dead_letter(message, route.chart_id, decoded.reason, decoded.detail)
                 continue
             readings = []
             for item in decoded:
                 if not runtime.accept_sequence(message.topic, item):
                     self.stats.duplicate_readings += 1
                     continue
-                readings.append(Reading(item.value, item.time, item.exposure))
+                moment = runtime.event_time(item, message.received_at)
+                if moment is None:
+                    reason = (
+                        "time_too_far_ahead" if item.time > message.received_at else "time_too_far_behind"
+                    )
+                    self.stats.rejected[reason] += 1
+                    _log.warning(
+                        "reading_rejected",
+                        chart=route.chart_id,
+                        topic=message.topic,
+                        reason=reason,
+                        detail=f"event time {item.time:.3f} against receive time {message.received_at:.3f}",
+                    )
+                    continue
+                readings.append(Reading(item.value, moment, item.exposure))
             self.stats.readings += len(readings)
             before = len(pending.output.subgroups)
             runtime.feed(readings, now_ms, pending.output)
             self.stats.subgroups += len(pending.output.subgroups) - before
+            if runtime.note_rate(len(readings), message.received_at):
+                self.stats.floods += 1
+                _log.warning(
+                    "topic_flooded",
+                    chart=route.chart_id,
+                    readings_per_minute=runtime.last_minute_readings,
+                    expected_per_minute=runtime.expected_per_minute,
+                )
+
+    def _dead_letter(self, message: Incoming, chart_id: str | None, reason: str, detail: str) -> None:
+        """Keep a copy of a refused message for the dead-letter topic (when configured; bounded)."""
+        if not self.config.alerts.dead_letters:
+            return
+        if len(self._dead_letters) == self._dead_letters.maxlen:
+            self.stats.dead_letters_dropped += 1
+        body = message.payload[:65536]
+        try:
+            payload, encoding = body.decode("utf-8"), "utf-8"
+        except UnicodeDecodeError:
+            payload, encoding = base64.b64encode(body).decode("ascii"), "base64"
+        self._dead_letters.append(
+            (
+                f"{self.alert_settings.prefix}/dead-letters/{chart_id or 'unrouted'}",
+                {
+                    "topic": message.topic,
+                    "chart": chart_id,
+                    "reason": reason,
+                    "detail": detail,
+                    "received": round(message.received_at * 1000),
+                    "payload": payload,
+                    "payload_encoding": encoding,
+                    "payload_bytes": len(message.payload),
+                },
+            )
+        )
+        self._publish_wake.set()
 
     async def _handle_ack(self, message: Incoming) -> None:
         """An acknowledgement from a crew on ``<prefix>/ack/<chart>``."""
@@ -731,6 +828,14 @@ class Daemon:
                 self.stats.published_alerts += len(sent)
             if failed or len(rows) < 500:
                 break
+        while self._dead_letters:
+            topic, body = self._dead_letters[0]
+            try:
+                await link.publish(topic, orjson.dumps(body), qos=1)
+            except PublishError:
+                break
+            self._dead_letters.popleft()
+            self.stats.dead_letters += 1
         now_ms = _now_ms()
         for runtime in list(self.runtimes.values()):
             if not runtime.status_dirty:

@@ -550,3 +550,105 @@ def test_a_database_outage_under_load_loses_nothing_and_the_daemon_recovers(tmp_
         database.remove()
     values = [row[0]["individuals_mr"]["individual"]["value"] for row in rows]
     assert values == [float(k) for k in range(1, total + 1)]
+
+
+def test_refused_messages_go_to_the_dead_letter_topic_with_their_reason(plant):
+    """With dead letters on, each refused message is copied to <prefix>/dead-letters/<chart>."""
+    plant.write(PRESS)
+    text = plant.config.read_text().replace("clear_after: 3}", "clear_after: 3, dead_letters: true}")
+    plant.config.write_text(text)
+    watcher = Subscriber(f"{plant.prefix}/dead-letters/#")
+    daemon = plant.daemon().start()
+    try:
+        publish(plant.topic("press/thickness"), ["not json", '{"v": 1e999}', readings([8.0])[0]])
+        letters = watcher.wait_for(2)
+    finally:
+        daemon.stop()
+        watcher.close()
+    assert [t for t, _ in letters] == [f"{plant.prefix}/dead-letters/press/thickness"] * 2
+    bodies = [json.loads(p) for _, p in letters]
+    assert [b["reason"] for b in bodies] == ["not_json", "not_finite"]
+    assert bodies[0]["payload"] == "not json"
+    assert bodies[0]["topic"] == plant.topic("press/thickness")
+
+
+def test_readings_far_in_the_future_are_refused_or_retimed_by_policy(plant):
+    """A reading stamped a day ahead is refused (counted) by default, or retimed when configured."""
+    plant.write(
+        """\
+        - id: strict/clock
+          topic: "{root}/strict"
+          payload: {{format: json, value: v, timestamp: ts}}
+          subgroup: {{size: 1}}
+          kinds: [individuals_mr]
+          limits: {{mean: 0, sigma: 1}}
+          rules: none
+        - id: lenient/clock
+          topic: "{root}/lenient"
+          payload: {{format: json, value: v, timestamp: ts}}
+          subgroup: {{size: 1}}
+          kinds: [individuals_mr]
+          limits: {{mean: 0, sigma: 1}}
+          rules: none
+          timestamps: {{max_ahead: 1m, max_behind: 1h, outside: receive_time}}
+        """
+    )
+    now = time.time()
+    stamps = [now, now + 86_400, now - 30, now - 7200]
+    daemon = plant.daemon().start()
+    for name in ("strict", "lenient"):
+        publish(f"test/{plant.name}/{name}", [json.dumps({"v": i, "ts": t}) for i, t in enumerate(stamps)])
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 3 + 4)
+    daemon.stop()
+    counts = dict(sqlite_rows(plant.db, "select chart, count(*) from subgroups group by chart"))
+    assert counts == {"strict/clock": 3, "lenient/clock": 4}
+    refused = [e for e in daemon.events() if e.get("event") == "reading_rejected"]
+    assert [(e["chart"], e["reason"]) for e in refused] == [("strict/clock", "time_too_far_ahead")]
+    lenient = sqlite_rows(
+        plant.db, "select start_ms from subgroups where chart = 'lenient/clock' order by idx"
+    )
+    assert abs(int(lenient[1][0]) / 1000 - now) < 60  # the day-ahead stamp was replaced by the receive time
+    assert abs(int(lenient[3][0]) / 1000 - now) < 60  # and so was the two-hour-old one
+
+
+def test_a_flooding_topic_is_reported_and_other_charts_keep_their_latency(tmp_path):
+    """One topic at 10x its configured rate is logged as flooding; another chart's alert still comes promptly."""
+    broker = PrivateBroker(tmp_path).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(
+        """\
+        - id: busy/flow
+          topic: "{root}/busy"
+          payload: {{format: json, value: v, sequence: seq}}
+          subgroup: {{size: 5}}
+          kinds: [xbar_r]
+          limits: {{mean: 750, sigma: 1000}}
+          rules: none
+          readings_every: 200ms
+        - id: quiet/level
+          topic: "{root}/quiet"
+          subgroup: {{size: 1}}
+          kinds: [individuals_mr]
+          limits: {{mean: 0, sigma: 1}}
+          rules: none
+        """
+    )
+    watcher = Subscriber(f"{plant.prefix}/alerts/#", port=broker.port)
+    daemon = plant.daemon().start()
+    flood = SteadyPublisher(broker.port, plant.topic("busy"), 1500, rate=50.0).start()  # 10x 5 per second
+    try:
+        daemon.wait_log("topic_flooded", 30)
+        sent = time.monotonic()
+        publish(plant.topic("quiet"), ["9.5"], port=broker.port)
+        alerts = watcher.wait_for(1, where="quiet")
+        latency = time.monotonic() - sent
+    finally:
+        flood.stop()
+        daemon.stop()
+        watcher.close()
+        broker.stop()
+    assert len(alerts) == 1
+    assert latency < 5.0  # generous: the alert did not wait behind the flood
+    flooded = [e for e in daemon.events() if e.get("event") == "topic_flooded"]
+    assert flooded[0]["chart"] == "busy/flow"
+    assert flooded[0]["expected_per_minute"] == pytest.approx(300.0)
