@@ -179,6 +179,60 @@ class RedeliveryGuard:
                     self._seen[(topic, mid, digest)] = None
 
 
+class SequenceTracker:
+    """The sequence numbers seen on one topic, to drop readings sent twice without losing late ones.
+
+    It keeps the highest number seen and the numbers below it not seen yet (within WINDOW of the
+    highest), so a reading that arrives out of order still counts once. A number at or below the
+    highest that is not missing is a duplicate; so is one older than the window. Jumps larger
+    than the window (sequence numbers that are not consecutive counters) are not tracked as gaps.
+
+    Examples:
+        >>> tracker = SequenceTracker()
+        >>> [tracker.accept(s) for s in (1, 2, 5, 3, 3, 4, 5, 6)]
+        [True, True, True, True, False, True, False, True]
+    """
+
+    WINDOW = 1024
+
+    def __init__(self) -> None:
+        self.highest: int | None = None
+        self.missing: set[int] = set()
+
+    def accept(self, sequence: int) -> bool:
+        """True the first time ``sequence`` is seen (within the window)."""
+        highest = self.highest
+        if highest is None or sequence > highest:
+            if highest is not None and sequence - highest <= self.WINDOW:
+                self.missing.update(range(highest + 1, sequence))
+            else:
+                self.missing.clear()
+            self.highest = sequence
+            floor = sequence - self.WINDOW
+            if self.missing and min(self.missing) < floor:
+                self.missing = {s for s in self.missing if s >= floor}
+            return True
+        if sequence in self.missing:
+            self.missing.discard(sequence)
+            return True
+        return False
+
+    def to_state(self) -> dict[str, object]:
+        """As plain data."""
+        return {"highest": self.highest, "missing": sorted(self.missing)}
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, object]) -> SequenceTracker:
+        """Rebuild from :meth:`to_state`."""
+        tracker = cls()
+        highest = state.get("highest")
+        missing = state.get("missing")
+        tracker.highest = highest if isinstance(highest, int) else None
+        if isinstance(missing, list):
+            tracker.missing = {m for m in missing if isinstance(m, int)}
+        return tracker
+
+
 # ---------------------------------------------------------------- one chart
 
 
@@ -204,7 +258,7 @@ class ChartRuntime:
         self.chart_set = ChartSet(self.spec)
         self.alert_settings = alerts
         self.tracker = AlertTracker(chart_id, alerts, collecting_baseline=self.spec.baseline is not None)
-        self.last_sequence: dict[str, int] = {}
+        self.sequences: dict[str, SequenceTracker] = {}
         self.limits_version = 0
         self.readings = 0
         self.duplicates = 0
@@ -226,7 +280,7 @@ class ChartRuntime:
             "grouper": self.grouper.to_state(),
             "chart_set": self.chart_set.to_state(),
             "tracker": self.tracker.to_state(),
-            "last_sequence": dict(self.last_sequence),
+            "sequences": {topic: tracker.to_state() for topic, tracker in self.sequences.items()},
             "limits_version": self.limits_version,
             "readings": self.readings,
             "duplicates": self.duplicates,
@@ -258,10 +312,14 @@ class ChartRuntime:
             raise StateError("the subgrouping changed")
         chart_set = ChartSet.from_state(self.spec, set_state)
         tracker = AlertTracker.from_state(self.chart_id, self.alert_settings, tracker_state)
-        sequences = state.get("last_sequence")
+        sequences = state.get("sequences")
         self.grouper, self.chart_set, self.tracker = grouper, chart_set, tracker
         if isinstance(sequences, dict):
-            self.last_sequence = {str(k): int(v) for k, v in sequences.items() if isinstance(v, int)}
+            self.sequences = {
+                str(topic): SequenceTracker.from_state(item)
+                for topic, item in sequences.items()
+                if isinstance(item, dict)
+            }
         for name in ("limits_version", "readings", "duplicates"):
             value = state.get(name)
             if isinstance(value, int):
@@ -271,18 +329,18 @@ class ChartRuntime:
     # -- readings
 
     def accept_sequence(self, topic: str, decoded: Decoded) -> bool:
-        """False if the reading's sequence number does not increase on its topic (a duplicate)."""
+        """False if this topic already had a reading with this sequence number (a duplicate)."""
         if decoded.sequence is None:
             return True
-        key = f"{topic}#{decoded.position}" if decoded.position else topic
-        last = self.last_sequence.get(key)
-        if last is not None and decoded.sequence <= last:
-            self.duplicates += 1
-            return False
-        self.last_sequence[key] = decoded.sequence
-        if len(self.last_sequence) > 10_000:
-            self.last_sequence.pop(next(iter(self.last_sequence)))
-        return True
+        tracker = self.sequences.get(topic)
+        if tracker is None:
+            tracker = self.sequences[topic] = SequenceTracker()
+            if len(self.sequences) > 10_000:
+                self.sequences.pop(next(iter(self.sequences)))
+        if tracker.accept(decoded.sequence):
+            return True
+        self.duplicates += 1
+        return False
 
     def event_time(self, decoded: Decoded, received_at: float) -> float | None:
         """The reading's event time under the chart's timestamp policy (None: refused)."""

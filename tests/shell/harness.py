@@ -21,7 +21,7 @@ import tempfile
 import threading
 import time
 import uuid
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -255,6 +255,15 @@ class DaemonProcess:
         self.wait_log("mqtt_connected", wait_connected)
         return self
 
+    def rss_mb(self) -> float:
+        """Resident memory of the daemon process now, in MiB (from /proc)."""
+        if self.process is None:
+            return 0.0
+        for line in Path(f"/proc/{self.process.pid}/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024
+        return 0.0
+
     def log_text(self) -> str:
         return self.log.read_text(errors="replace") if self.log.exists() else ""
 
@@ -374,10 +383,13 @@ class PrivatePostgres:
 class SteadyPublisher:
     """Publishes JSON readings {"v": k, "seq": k}, k = 1..total, at a steady rate with QoS 1 (paho, threaded)."""
 
-    def __init__(self, port: int, topic: str, total: int, *, rate: float) -> None:
+    def __init__(
+        self, port: int, topic: str, total: int, *, rate: float, value: Callable[[int], float] | None = None
+    ) -> None:
         import paho.mqtt.client as mqtt  # noqa: PLC0415 - only these tests publish from Python
 
         self.topic, self.total, self.rate = topic, total, rate
+        self.value = value or float
         self.sent = 0
         self._stop = threading.Event()
         self._client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=unique("sender-"))
@@ -397,7 +409,7 @@ class SteadyPublisher:
             pause = started + k / self.rate - time.monotonic()
             if pause > 0:
                 time.sleep(pause)
-            info = self._client.publish(self.topic, json.dumps({"v": k, "seq": k}), qos=1)
+            info = self._client.publish(self.topic, json.dumps({"v": self.value(k), "seq": k}), qos=1)
             info.wait_for_publish(timeout=30)
             self.sent = k
 
@@ -409,3 +421,14 @@ class SteadyPublisher:
         self._thread.join(timeout=10)
         self._client.loop_stop()
         self._client.disconnect()
+
+
+FIGURES = Path(__file__).resolve().parents[2] / "var" / "reliability" / "figures.jsonl"
+
+
+def record_figures(scenario: str, **figures: object) -> None:
+    """Append the figures a fault test measured, for scripts/reliability_report."""
+    FIGURES.parent.mkdir(parents=True, exist_ok=True)
+    line = {"scenario": scenario, "at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), **figures}
+    with FIGURES.open("a") as handle:
+        handle.write(json.dumps(line) + "\n")
