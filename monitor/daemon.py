@@ -55,6 +55,7 @@ from monitor.spc import (
     Reading,
     ReadingError,
     Signal,
+    State,
     StateError,
     Subgroup,
     WindowSubgrouper,
@@ -179,6 +180,33 @@ class RedeliveryGuard:
                     self._seen[(topic, mid, digest)] = None
 
 
+def _grouper_from(state: State) -> CountSubgrouper | WindowSubgrouper | None:
+    """The subgroup former a checkpoint holds, or None if it cannot be read."""
+    kind = state.get("kind")
+    try:
+        if kind == "count_subgrouper":
+            return CountSubgrouper.from_state(state)
+        if kind == "window_subgrouper":
+            return WindowSubgrouper.from_state(state)
+    except (StateError, ReadingError, ConfigError):
+        return None
+    return None
+
+
+def _same_grouping(old: CountSubgrouper | WindowSubgrouper, new: CountSubgrouper | WindowSubgrouper) -> bool:
+    if isinstance(old, CountSubgrouper) and isinstance(new, CountSubgrouper):
+        return old.size == new.size
+    if isinstance(old, WindowSubgrouper) and isinstance(new, WindowSubgrouper):
+        return (old.width, old.min_size, old.lateness, old.origin, old.max_open) == (
+            new.width,
+            new.min_size,
+            new.lateness,
+            new.origin,
+            new.max_open,
+        )
+    return False
+
+
 class SequenceTracker:
     """The sequence numbers seen on one topic, to drop readings sent twice without losing late ones.
 
@@ -249,13 +277,15 @@ class ChartOutput:
 class ChartRuntime:
     """Everything the daemon keeps for one chart: subgroup former, chart set, alert tracker."""
 
-    def __init__(self, chart_id: str, config: ChartConfig, alerts: AlertSettings) -> None:
+    def __init__(
+        self, chart_id: str, config: ChartConfig, alerts: AlertSettings, *, first_index: int = 0
+    ) -> None:
         self.chart_id = chart_id
         self.config = config
         self.spec = config.spec()
         self.mapping = PayloadMapping(**config.payload.model_dump())
         self.grouper: CountSubgrouper | WindowSubgrouper = config.subgrouper()
-        self.chart_set = ChartSet(self.spec)
+        self.chart_set = ChartSet(self.spec, first_index=first_index)
         self.alert_settings = alerts
         self.tracker = AlertTracker(chart_id, alerts, collecting_baseline=self.spec.baseline is not None)
         self.sequences: dict[str, SequenceTracker] = {}
@@ -263,6 +293,8 @@ class ChartRuntime:
         self.readings = 0
         self.duplicates = 0
         self.floods = 0
+        self.carried: list[Reading] = []
+        self.new_settings = False
         self.last_minute_readings = 0
         self._window_start = 0.0
         self._window_count = 0
@@ -282,12 +314,17 @@ class ChartRuntime:
             "tracker": self.tracker.to_state(),
             "sequences": {topic: tracker.to_state() for topic, tracker in self.sequences.items()},
             "limits_version": self.limits_version,
+            "carried": [[r.value, r.time, r.exposure] for r in self.carried],
             "readings": self.readings,
             "duplicates": self.duplicates,
         }
 
-    def restore(self, state: Mapping[str, object]) -> None:
-        """Continue from a checkpoint; raises StateError if it does not fit this configuration."""
+    def restore(self, state: Mapping[str, object]) -> list[str]:
+        """Continue from a checkpoint; returns what had to start afresh because the settings changed.
+
+        Readings waiting for a subgroup are never dropped: under a new subgrouping they are fed
+        to the new subgroup former. Raises StateError only for an unreadable checkpoint.
+        """
         if state.get("schema") != _STATE_SCHEMA:
             raise StateError(f"checkpoint schema {state.get('schema')!r} is not {_STATE_SCHEMA}")
         grouper_state = state.get("grouper")
@@ -299,21 +336,35 @@ class ChartRuntime:
             or not isinstance(tracker_state, dict)
         ):
             raise StateError("checkpoint lacks its parts")
-        kind = grouper_state.get("kind")
-        grouper: CountSubgrouper | WindowSubgrouper
-        if kind == "count_subgrouper" and isinstance(self.grouper, CountSubgrouper):
-            restored = CountSubgrouper.from_state(grouper_state)
-            if restored.size != self.grouper.size:
-                raise StateError("the subgroup size changed")
-            grouper = restored
-        elif kind == "window_subgrouper" and isinstance(self.grouper, WindowSubgrouper):
-            grouper = WindowSubgrouper.from_state(grouper_state)
+        notes: list[str] = []
+        old_grouper = _grouper_from(grouper_state)
+        if old_grouper is not None and _same_grouping(old_grouper, self.grouper):
+            self.grouper = old_grouper
         else:
-            raise StateError("the subgrouping changed")
-        chart_set = ChartSet.from_state(self.spec, set_state)
-        tracker = AlertTracker.from_state(self.chart_id, self.alert_settings, tracker_state)
+            # the subgrouping changed: the readings waiting for a subgroup go into the new one
+            self.carried = [] if old_grouper is None else old_grouper.pending_readings()
+            notes.append(f"subgrouping changed; {len(self.carried)} waiting readings carried over")
+        try:
+            self.chart_set = ChartSet.from_state(self.spec, set_state)
+        except StateError as exc:
+            next_index = set_state.get("next_index")
+            first = next_index if isinstance(next_index, int) else 0
+            self.chart_set = ChartSet(self.spec, first_index=first)
+            self.new_settings = True
+            notes.append(f"chart settings changed ({exc}); charting continues at subgroup {first}")
+        try:
+            self.tracker = AlertTracker.from_state(self.chart_id, self.alert_settings, tracker_state)
+        except (StateError, ValueError) as exc:
+            notes.append(f"alert state started afresh ({exc})")
+        carried = state.get("carried")
+        if isinstance(carried, list):
+            for item in carried:
+                if isinstance(item, list) and len(item) == 3:
+                    value, moment, exposure = item
+                    if isinstance(value, int | float) and isinstance(moment, int | float):
+                        weight = float(exposure) if isinstance(exposure, int | float) else None
+                        self.carried.append(Reading(float(value), float(moment), weight))
         sequences = state.get("sequences")
-        self.grouper, self.chart_set, self.tracker = grouper, chart_set, tracker
         if isinstance(sequences, dict):
             self.sequences = {
                 str(topic): SequenceTracker.from_state(item)
@@ -324,7 +375,8 @@ class ChartRuntime:
             value = state.get(name)
             if isinstance(value, int):
                 setattr(self, name, value)
-        self.dirty = False
+        self.dirty = bool(notes)
+        return notes
 
     # -- readings
 
@@ -376,7 +428,9 @@ class ChartRuntime:
 
     def feed(self, readings: list[Reading], now_ms: int, out: ChartOutput) -> None:
         """Add readings; charts every subgroup they complete."""
-        self.readings += len(readings)
+        self.readings += len(readings)  # readings carried over were counted when they came
+        if self.carried:
+            readings, self.carried = [*self.carried, *readings], []
         self.dirty = True
         for reading in readings:
             made = self.grouper.add(reading)
@@ -399,7 +453,8 @@ class ChartRuntime:
         charted = chart_set.monitoring  # the subgroup that completes a baseline is not charted
         signals = chart_set.update(subgroup)
         index = chart_set.next_index - 1
-        if chart_set.monitoring and self.limits_version == 0:
+        if chart_set.monitoring and (self.limits_version == 0 or self.new_settings):
+            self.new_settings = False
             self._new_limits(now_ms, out)
         if not charted:
             self.status_dirty = True
@@ -594,6 +649,7 @@ class Daemon:
         self.store: Store | None = None
         self.link: MqttLink | None = None
         self._checkpoints: dict[str, dict[str, object]] = {}
+        self._positions: dict[str, tuple[int, int]] = {}
         self._dead_letters: deque[tuple[str, dict[str, object]]] = deque(maxlen=1000)
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
@@ -611,11 +667,22 @@ class Daemon:
         stored = self._checkpoints.pop(chart_id, None)
         if stored is not None:
             try:
-                runtime.restore(stored)
+                notes = runtime.restore(stored)
                 _log.info("checkpoint_restored", chart=chart_id, subgroups=runtime.chart_set.next_index)
+                for note in notes:
+                    _log.warning("checkpoint_partly_restored", chart=chart_id, reason=note)
             except (StateError, ReadingError, ValueError, KeyError) as exc:
-                runtime = ChartRuntime(chart_id, template, self.alert_settings)
-                _log.warning("checkpoint_discarded", chart=chart_id, reason=str(exc))
+                next_index, version = self._positions.get(chart_id, (0, 0))
+                runtime = ChartRuntime(chart_id, template, self.alert_settings, first_index=next_index)
+                runtime.limits_version = version
+                _log.warning(
+                    "checkpoint_discarded", chart=chart_id, reason=str(exc), continuing_at_subgroup=next_index
+                )
+        elif chart_id in self._positions:
+            # stored history without a checkpoint: continue after it
+            next_index, version = self._positions[chart_id]
+            runtime = ChartRuntime(chart_id, template, self.alert_settings, first_index=next_index)
+            runtime.limits_version = version
         self.runtimes[chart_id] = runtime
         return runtime
 
@@ -930,6 +997,7 @@ class Daemon:
         self.store = store
         try:
             self._checkpoints = await store.load_checkpoints()
+            self._positions = await store.chart_positions()
             link_state = self._checkpoints.pop(_LINK_CHECKPOINT + self.broker.client_id, None)
             if link_state is not None:
                 self.guard.restore(link_state)

@@ -324,6 +324,10 @@ class CountSubgrouper:
         """Readings waiting for their subgroup to fill."""
         return len(self._buffer)
 
+    def pending_readings(self) -> list[Reading]:
+        """The readings waiting for their subgroup, oldest first."""
+        return list(self._buffer)
+
     def add(self, reading: Reading) -> Subgroup | None:
         """Add one reading; return the subgroup it completes, if any."""
         self._buffer.append(reading)
@@ -453,6 +457,10 @@ class WindowSubgrouper:
     def pending(self) -> int:
         """Readings in open windows."""
         return sum(len(v) for v in self._open.values())
+
+    def pending_readings(self) -> list[Reading]:
+        """The readings in open windows, by window and arrival."""
+        return [r for _, readings in sorted(self._open.items()) for r in readings]
 
     def add(self, reading: Reading) -> list[Subgroup]:
         """Add one reading; return the subgroups of the windows this closes, oldest first."""

@@ -262,6 +262,24 @@ class Store:
         rows = await self._fetch("counting subgroups", query)
         return int(rows[0][0])
 
+    async def chart_positions(self) -> dict[str, tuple[int, int]]:
+        """Per chart: the next free subgroup index and the latest limits version stored (0 if none).
+
+        A chart that has to start afresh (its checkpoint no longer fits the configuration)
+        continues from here, so new rows never collide with the stored history.
+        """
+        subgroups, limits = schema.subgroups, schema.limits
+        next_index = select(subgroups.c.chart, func.max(subgroups.c.idx) + 1).group_by(subgroups.c.chart)
+        versions = select(limits.c.chart, func.max(limits.c.version)).group_by(limits.c.chart)
+        positions: dict[str, tuple[int, int]] = {}
+        for row in await self._fetch("reading chart positions", next_index):
+            chart, index = tuple(row)
+            positions[str(chart)] = (int(index), 0)
+        for row in await self._fetch("reading limits versions", versions):
+            chart, version = tuple(row)
+            positions[str(chart)] = (positions.get(str(chart), (0, 0))[0], int(version))
+        return positions
+
     async def signals_for(self, chart: str) -> list[SignalRow]:
         """Every stored signal of the chart, ordered by subgroup."""
         table = schema.signals

@@ -781,3 +781,34 @@ def test_a_catalogue_of_bad_payloads_is_refused_one_by_one_and_nothing_else_is_a
         good_readings_published=len(BAD_PAYLOADS) + 2,
         good_readings_counted=len(BAD_PAYLOADS) + 2,
     )
+
+
+def test_changed_settings_continue_from_the_checkpoint_without_losing_waiting_readings(plant):
+    """New rules, then a new subgroup size: charting continues after the stored history, nothing dropped."""
+    plant.write(PRESS)
+    values = [8.0 + 0.001 * k for k in range(30)]
+    daemon = plant.daemon().start()
+    publish(plant.topic("press/thickness"), readings(values[:11]))  # 2 subgroups of 5, 1 waiting
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 2)
+    daemon.stop()
+    plant.config.write_text(plant.config.read_text().replace("rules: western-electric", "rules: nelson"))
+    daemon = plant.daemon().start()
+    publish(plant.topic("press/thickness"), readings(values[11:15], start_seq=12, start_s=1_767_600_011.0))
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 3)
+    daemon.stop()
+    plant.config.write_text(plant.config.read_text().replace("subgroup: {size: 5}", "subgroup: {size: 3}"))
+    daemon = plant.daemon().start()
+    publish(plant.topic("press/thickness"), readings(values[15:21], start_seq=16, start_s=1_767_600_015.0))
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 5)
+    daemon.stop()
+    rows = sqlite_rows(plant.db, "select idx, n, points from subgroups order by idx")
+    assert [(r[0], r[1]) for r in rows] == [(0, 5), (1, 5), (2, 5), (3, 3), (4, 3)]
+    means = [json.loads(str(r[2]))["xbar_r"]["mean"]["value"] for r in rows]
+    expected = [sum(values[a:b]) / (b - a) for a, b in ((0, 5), (5, 10), (10, 15), (15, 18), (18, 21))]
+    assert means == pytest.approx(expected, abs=1e-12)
+    notes = [str(e["reason"]) for e in daemon.events() if e.get("event") == "checkpoint_partly_restored"]
+    assert any("chart settings changed" in n and "subgroup 2" in n for n in notes)
+    limits = sqlite_rows(
+        plant.db, "select version from limits where chart = 'press/thickness' order by version"
+    )
+    assert [r[0] for r in limits] == [1, 2]  # new rules made a new limits version

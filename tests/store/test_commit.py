@@ -154,3 +154,15 @@ async def test_latest_limits_are_those_of_the_highest_version(store):
     await store.commit(CommitBatch(limits=[limits("a", 2, mean=2.0, created_ms=T0 + 9)]))
     assert await store.latest_limits("a") == highest
     assert await store.latest_limits("b") is None
+
+
+async def test_chart_positions_give_the_next_subgroup_and_the_latest_limits_version(store):
+    """After stored history a chart continues at max(index) + 1 and its newest limits version."""
+    assert await store.chart_positions() == {}
+    await store.commit(
+        CommitBatch(
+            subgroups=[subgroup("a", 0), subgroup("a", 1), subgroup("a", 7), subgroup("b", 3)],
+            limits=[limits("a", 1), limits("a", 2), limits("c", 4)],
+        )
+    )
+    assert await store.chart_positions() == {"a": (8, 2), "b": (4, 0), "c": (0, 4)}
