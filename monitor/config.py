@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import os
 import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -371,10 +372,26 @@ class AlertsConfig(_Strict):
         return value
 
 
+class HealthConfig(_Strict):
+    """The optional HTTP endpoint for liveness, readiness and Prometheus metrics."""
+
+    host: Annotated[str, Field(min_length=1, max_length=253)] = "127.0.0.1"
+    port: Annotated[int, Field(ge=1, le=65535)] = 9410
+    database_within: float = 30.0
+    max_lag: float = 60.0
+    heartbeat_within: float = 60.0
+
+    @field_validator("database_within", "max_lag", "heartbeat_within", mode="before")
+    @classmethod
+    def _duration(cls, value: object) -> object:
+        return parse_duration(value)
+
+
 class Config(_Strict):
     """A whole configuration file."""
 
     broker: BrokerConfig = BrokerConfig()
+    health: HealthConfig | None = None
     storage: StorageConfig = StorageConfig()
     alerts: AlertsConfig = AlertsConfig()
     charts: Annotated[list[ChartConfig], Field(min_length=1)]
@@ -648,6 +665,7 @@ def _known_keys() -> set[str]:
         TlsConfig,
         StorageConfig,
         AlertsConfig,
+        HealthConfig,
         PayloadConfig,
         TimestampPolicy,
         Config,
@@ -748,8 +766,14 @@ def resolve_password(broker: BrokerConfig, environ: Mapping[str, str]) -> str | 
     return None
 
 
-def storage_url(config: Config, config_path: Path) -> str:
-    """The configured storage URL, or a SQLite file ``monitor.db`` next to the configuration."""
+def storage_url(config: Config, config_path: Path, environ: Mapping[str, str] | None = None) -> str:
+    """The configured storage URL; by default a SQLite file ``monitor.db``.
+
+    The default file goes in ``$STATE_DIRECTORY`` when that is set (systemd ``StateDirectory=``,
+    where the configuration directory is read-only), otherwise next to the configuration.
+    """
     if config.storage.url:
         return config.storage.url
-    return f"sqlite:///{(config_path.parent / 'monitor.db').resolve()}"
+    state_directory = (environ if environ is not None else os.environ).get("STATE_DIRECTORY")
+    folder = Path(state_directory.split(":")[0]) if state_directory else config_path.parent
+    return f"sqlite:///{(folder / 'monitor.db').resolve()}"

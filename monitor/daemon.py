@@ -23,6 +23,7 @@ import base64
 import contextlib
 import hashlib
 import os
+import re
 import signal
 import sys
 import time
@@ -34,6 +35,7 @@ from typing import TypeVar
 
 import orjson
 
+from monitor import sdnotify
 from monitor.alerts import (
     AckError,
     Alert,
@@ -44,10 +46,20 @@ from monitor.alerts import (
     parse_ack,
     topics,
 )
-from monitor.config import ChartConfig, Config, resolve_password, storage_url
+from monitor.config import ChartConfig, Config, ConfigProblems, load_config, resolve_password, storage_url
+from monitor.health import (
+    DatabaseWatch,
+    GaugeSnapshot,
+    HealthServer,
+    Heartbeat,
+    Metrics,
+    Readiness,
+    ReadinessLimits,
+)
 from monitor.ingest import Decoded, PayloadError, PayloadMapping, Router, decode
 from monitor.logs import get_logger
 from monitor.mqtt import BrokerSettings, Incoming, MqttLink, PublishError, TlsSettings
+from monitor.sharding import owns, shard_client_id, shard_from_environment
 from monitor.spc import (
     ChartSet,
     ConfigError,
@@ -79,6 +91,8 @@ _log = get_logger(component="daemon")
 _T = TypeVar("_T")
 
 _STATE_SCHEMA = 1
+WATCHDOG_PROGRESS = 30.0
+"""Seconds without a pass of the processing loop after which the systemd watchdog is not fed."""
 RATE_WINDOW = 10.0
 """Seconds over which a chart's reading rate is compared with its configured rate."""
 STOP_GRACE = 15.0
@@ -604,14 +618,12 @@ class Daemon:
         tick: float = 0.5,
     ) -> None:
         env = os.environ if environ is None else environ
-        missing_topic = [c.id for c in config.charts if not c.topic]
-        if missing_topic:
-            raise ConfigError(
-                f"the daemon needs a topic for every chart; none for {', '.join(missing_topic)}"
-            )
+        _check_daemon_config(config)
         self.config = config
         self.config_path = config_path
-        self.url = storage_url(config, config_path)
+        self.environ = env
+        self.url = storage_url(config, config_path, env)
+        self.shard = shard_from_environment(env)
         a = config.alerts
         self.alert_settings = AlertSettings(
             prefix=a.prefix,
@@ -627,7 +639,7 @@ class Daemon:
         self.broker = BrokerSettings(
             host=b.host,
             port=b.port,
-            client_id=b.client_id,
+            client_id=b.client_id if self.shard is None else shard_client_id(b.client_id, self.shard[0]),
             username=b.username,
             password=resolve_password(b, env),
             tls=tls,
@@ -636,11 +648,9 @@ class Daemon:
             keepalive=b.keepalive,
             reconnect_max=b.reconnect_max,
         )
-        self.templates = {c.id: c for c in config.charts}
-        self.router = Router([(c.id, c.topic or "") for c in config.charts])
         self.ack_filter = f"{a.prefix}/ack/#"
-        self.subscriptions = minimal_filters([*self.router.filters(), self.ack_filter])
-        self.presence_topic = f"{a.prefix}/daemon/{b.client_id}"
+        self._set_charts(config)
+        self.presence_topic = f"{a.prefix}/daemon/{self.broker.client_id}"
         self.max_batch = max_batch
         self.tick = tick
         self.stats = DaemonStats()
@@ -654,7 +664,34 @@ class Daemon:
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
         self._stopped_at: float | None = None
+        self._reload_requested = False
+        self._batch_received: float | None = None
         self.ready = asyncio.Event()
+        self.heartbeat = Heartbeat()
+        self.database: DatabaseWatch | None = None
+        self.metrics = Metrics(snapshot=self._gauges)
+        self.health: HealthServer | None = None
+
+    # -- ownership and topics
+
+    def _set_charts(self, config: Config) -> None:
+        """Templates, routing and subscriptions for the charts this instance owns."""
+        self.templates = {c.id: c for c in config.charts}
+        self.router = Router([(c.id, c.topic or "") for c in config.charts])
+        mine = [c for c in config.charts if c.placeholders or self.owns(c.id)]
+        self.subscriptions = minimal_filters([*(_filter_of(c) for c in mine), self.ack_filter])
+
+    def owns(self, chart_id: str) -> bool:
+        """Whether this instance keeps ``chart_id`` (always, unless sharded)."""
+        return self.shard is None or owns(chart_id, self.shard[0], self.shard[1])
+
+    def lag(self) -> float:
+        """Seconds the oldest message of the batch in hand has waited (0 when idle)."""
+        received = self._batch_received
+        return 0.0 if received is None else max(0.0, time.time() - received)
+
+    def _gauges(self) -> GaugeSnapshot:
+        return GaugeSnapshot(0 if self.link is None else self.link.queued, self.lag(), len(self.runtimes))
 
     # -- charts
 
@@ -691,9 +728,11 @@ class Daemon:
     def handle(self, message: Incoming, pending: _Pending) -> None:
         """Process one chart message into pending output (nothing is committed here)."""
         self.stats.messages += 1
+        self.metrics.count_messages()
         pending.messages.append(message)
         if self.guard.seen(message):
             self.stats.duplicate_messages += 1
+            self.metrics.count_duplicate("message")
             _log.info("message_duplicated", topic=message.topic, mid=message.mid)
             return
         routing = self.router.resolve(message.topic)
@@ -702,8 +741,11 @@ class Daemon:
             _log.warning(
                 "topic_refused", topic=message.topic, chart=refused.template_id, reason=refused.reason
             )
+            self.metrics.count_decode_error(refused.reason)
             self._dead_letter(message, None, refused.reason, refused.detail)
-        routes = routing.routes
+        routes = [r for r in routing.routes if self.owns(r.chart_id)]
+        if routing.routes and not routes:
+            return  # another shard keeps these charts
         if not routes:
             self.stats.unrouted += 1
             return
@@ -721,6 +763,7 @@ class Daemon:
                 decoded_by_mapping[runtime.mapping] = decoded
             if isinstance(decoded, PayloadError):
                 self.stats.rejected[decoded.reason] += 1
+                self.metrics.count_decode_error(decoded.reason)
                 _log.warning(
                     "reading_rejected",
                     chart=route.chart_id,
@@ -734,6 +777,7 @@ class Daemon:
             for item in decoded:
                 if not runtime.accept_sequence(message.topic, item):
                     self.stats.duplicate_readings += 1
+                    self.metrics.count_duplicate("reading")
                     continue
                 moment = runtime.event_time(item, message.received_at)
                 if moment is None:
@@ -741,6 +785,7 @@ class Daemon:
                         "time_too_far_ahead" if item.time > message.received_at else "time_too_far_behind"
                     )
                     self.stats.rejected[reason] += 1
+                    self.metrics.count_decode_error(reason)
                     _log.warning(
                         "reading_rejected",
                         chart=route.chart_id,
@@ -751,9 +796,11 @@ class Daemon:
                     continue
                 readings.append(Reading(item.value, moment, item.exposure))
             self.stats.readings += len(readings)
+            self.metrics.count_readings(len(readings))
             before = len(pending.output.subgroups)
             runtime.feed(readings, now_ms, pending.output)
             self.stats.subgroups += len(pending.output.subgroups) - before
+            self.metrics.count_subgroups(len(pending.output.subgroups) - before)
             if runtime.note_rate(len(readings), message.received_at):
                 self.stats.floods += 1
                 _log.warning(
@@ -769,6 +816,7 @@ class Daemon:
             return
         if len(self._dead_letters) == self._dead_letters.maxlen:
             self.stats.dead_letters_dropped += 1
+        self.metrics.count_dead_letter()
         body = message.payload[:65536]
         try:
             payload, encoding = body.decode("utf-8"), "utf-8"
@@ -822,6 +870,13 @@ class Daemon:
         self.stats.acks_received += 1
         _log.info("alert_acknowledged", chart=chart_id, alert=request.alert_id, by=request.by)
 
+    def _note_store_failure(self, exc: StoreError) -> None:
+        self.stats.store_failures += 1
+        self.metrics.count_store_failure()
+        self.heartbeat.beat()  # waiting for the database is not a stuck loop
+        if self.database is not None:
+            self.database.failed(str(exc))
+
     async def _retrying(self, what: str, operation: Callable[[], Awaitable[_T]]) -> _T:
         """Run a store operation, retrying with capped backoff while the store is unreachable."""
         delay = 0.2
@@ -829,7 +884,7 @@ class Daemon:
             try:
                 return await operation()
             except StoreError as exc:
-                self.stats.store_failures += 1
+                self._note_store_failure(exc)
                 if self._stopped_at is not None and time.monotonic() - self._stopped_at > STOP_GRACE:
                     raise
                 _log.error("store_operation_failed", operation=what, error=str(exc), retry_in=round(delay, 1))
@@ -850,7 +905,9 @@ class Daemon:
         for message in pending.messages:
             self.guard.remember(message)
         checkpoints = {rt.chart_id: rt.to_state() for rt in self.runtimes.values() if rt.dirty}
-        checkpoints[_LINK_CHECKPOINT + self.broker.client_id] = self.guard.checkpoint()
+        link_state = self.guard.checkpoint()
+        link_state["subscriptions"] = list(self.subscriptions)
+        checkpoints[_LINK_CHECKPOINT + self.broker.client_id] = link_state
         out = pending.output
         batch = CommitBatch(
             subgroups=out.subgroups,
@@ -866,7 +923,7 @@ class Daemon:
                 await store.commit(batch)
                 break
             except StoreError as exc:
-                self.stats.store_failures += 1
+                self._note_store_failure(exc)
                 if self._stopped_at is not None and time.monotonic() - self._stopped_at > STOP_GRACE:
                     _log.error(
                         "store_unreachable_at_stop", error=str(exc), unacknowledged=len(pending.messages)
@@ -876,7 +933,15 @@ class Daemon:
                 await asyncio.sleep(delay)
                 delay = min(delay * 2, 10.0)
         self.stats.commits += 1
-        self.stats.commit_seconds += time.perf_counter() - started
+        elapsed = time.perf_counter() - started
+        self.stats.commit_seconds += elapsed
+        self.metrics.observe_commit(elapsed)
+        if self.database is not None:
+            self.database.succeeded()
+        for row in out.signals:
+            self.metrics.count_signal(row.chart, row.rule)
+        for alert in out.alerts:
+            self.metrics.count_alert(alert.chart_id, alert.kind.value)
         for runtime in self.runtimes.values():
             runtime.dirty = False
         for message in pending.messages:
@@ -894,6 +959,10 @@ class Daemon:
         if link is None:
             return
         while not self._stopping.is_set():
+            self.heartbeat.beat()
+            if self._reload_requested:
+                self._reload_requested = False
+                await self._reload(link)
             pending = _Pending()
             try:
                 async with asyncio.timeout(self.tick):
@@ -901,6 +970,7 @@ class Daemon:
             except TimeoutError:
                 first = None
             messages = ([first] if first is not None else []) + link.take_ready(self.max_batch - 1)
+            self._batch_received = messages[0].received_at if messages else None
             for message in messages:
                 if message.topic.startswith(self.ack_filter[:-1]):
                     await self._handle_ack(message)
@@ -912,6 +982,7 @@ class Daemon:
                 runtime.advance(now, pending.output)
             if not pending.empty():
                 await self._commit(pending)
+            self._batch_received = None
 
     async def _publish_loop(self) -> None:
         store, link = self.store, self.link
@@ -974,6 +1045,14 @@ class Daemon:
 
     # -- life cycle
 
+    def _owned_description(self) -> str:
+        fixed = [c for c in self.config.charts if not c.placeholders]
+        if self.shard is None:
+            return f"{len(self.config.charts)} configured"
+        mine = sum(1 for c in fixed if self.owns(c.id))
+        index, count = self.shard
+        return f"{mine} of {len(fixed)} fixed charts (shard {index} of {count})"
+
     def describe_start(self) -> list[str]:
         """What the daemon prints at start: subscriptions, storage and charts owned."""
         filters = [f for f in self.subscriptions if f != self.ack_filter]
@@ -982,7 +1061,7 @@ class Daemon:
             f"line-monitor: broker {self.broker.describe()}",
             f"  subscribed to: {', '.join(filters)} (and {self.ack_filter} for acknowledgements)",
             f"  storing in: {_safe_url(self.url)}",
-            f"  charts owned: {len(self.config.charts)} configured"
+            f"  charts owned: {self._owned_description()}"
             + (f" ({len(expanding)} expand per topic level)" if expanding else ""),
             (
                 f"  alerts on {self.alert_settings.prefix}/alerts/<chart>, "
@@ -993,20 +1072,28 @@ class Daemon:
 
     async def run(self, *, announce: Callable[[str], None] | None = None) -> None:
         """Run until :meth:`stop`; then flush, checkpoint, publish what is pending and disconnect."""
+        sdnotify.extend_timeout(300)
+        sdnotify.status("opening the database")
         store = await Store.open(self.url)
         self.store = store
+        self.database = DatabaseWatch(store.ping)
+        self.database.succeeded()
         try:
             self._checkpoints = await store.load_checkpoints()
             self._positions = await store.chart_positions()
             link_state = self._checkpoints.pop(_LINK_CHECKPOINT + self.broker.client_id, None)
+            forget: list[str] = []
             if link_state is not None:
                 self.guard.restore(link_state)
+                before = link_state.get("subscriptions")
+                if isinstance(before, list):
+                    forget = [str(f) for f in before if f not in self.subscriptions]
             for chart in self.config.charts:
-                if not chart.placeholders:
+                if not chart.placeholders and self.owns(chart.id):
                     self.runtime(chart.id, chart)
             for chart_id, state in list(self._checkpoints.items()):
                 template = self.templates.get(str(state.get("template")))
-                if template is not None and template.placeholders:
+                if template is not None and template.placeholders and self.owns(chart_id):
                     self.runtime(chart_id, template)
             offline = orjson.dumps({"online": False, "client_id": self.broker.client_id})
             online = orjson.dumps({"online": True, "client_id": self.broker.client_id})
@@ -1016,9 +1103,12 @@ class Daemon:
                 will=(self.presence_topic, offline),
                 online=online,
                 queue_size=self.config.broker.max_buffered_messages,
+                forget=forget,
             )
             self.link = link
             link.on_connect(self._publish_wake.set)
+            link.on_connect(self.metrics.note_connect)
+            self._start_health(link)
             for line in self.describe_start():
                 (announce or _stderr)(line)
             _log.info(
@@ -1028,19 +1118,57 @@ class Daemon:
                 storage=_safe_url(self.url),
                 charts=len(self.config.charts),
             )
+            watchdog = sdnotify.Watchdog(
+                lambda: self.heartbeat.age() < WATCHDOG_PROGRESS, environ=self.environ
+            )
             async with asyncio.TaskGroup() as group:
                 link_task = group.create_task(link.run(), name="monitor.mqtt.link")
                 publisher = group.create_task(self._publish_loop(), name="monitor.alerts.publisher")
+                helpers = [group.create_task(self.database.run(), name="monitor.store.watch")]
+                if watchdog.enabled:
+                    helpers.append(group.create_task(watchdog.run(), name="monitor.systemd.watchdog"))
                 self.ready.set()
+                sdnotify.ready(
+                    f"subscribed to {len(self.subscriptions)} filters, {len(self.runtimes)} charts"
+                )
                 await self._process_loop()
                 # stopping: everything taken is committed; publish what is left, then leave
                 await self._final_flush(store, link)
                 publisher.cancel()
+                for helper in helpers:
+                    helper.cancel()
                 link.stop()
                 link_task.cancel()
         finally:
+            if self.health is not None:
+                await asyncio.to_thread(self.health.stop)
             await store.close()
             _log.info("daemon_stopped", **_stats_summary(self.stats))
+
+    def _start_health(self, link: MqttLink) -> None:
+        settings = self.config.health
+        if settings is None:
+            return
+        database = self.database
+
+        def readiness() -> Readiness:
+            return Readiness(link.connected, None if database is None else database.age(), self.lag())
+
+        self.health = HealthServer(
+            settings.host,
+            settings.port,
+            heartbeat=self.heartbeat.age,
+            readiness=readiness,
+            metrics=self.metrics,
+            loop=asyncio.get_running_loop(),
+            limits=ReadinessLimits(
+                database_within=settings.database_within,
+                lag_within=settings.max_lag,
+                heartbeat_within=settings.heartbeat_within,
+            ),
+        )
+        self.health.start()
+        _log.info("health_endpoint_started", url=self.health.url)
 
     async def _final_flush(self, store: Store, link: MqttLink) -> None:
         pending = _Pending()
@@ -1062,7 +1190,69 @@ class Daemon:
         """Ask the daemon to finish: stop taking messages, commit, publish, disconnect."""
         if self._stopped_at is None:
             self._stopped_at = time.monotonic()
+            sdnotify.stopping("committing and disconnecting")
         self._stopping.set()
+
+    def request_reload(self) -> None:
+        """Ask the daemon to read its configuration again between two batches (SIGHUP)."""
+        self._reload_requested = True
+
+    async def _reload(self, link: MqttLink) -> None:
+        """Apply a changed configuration: changed charts continue from their state, others run on.
+
+        An invalid file is refused with its messages and the running configuration stays. The
+        broker, storage, alerts and health sections need a restart; changes there are reported.
+        """
+        try:
+            new = load_config(self.config_path)
+            _check_daemon_config(new)
+        except (ConfigProblems, ConfigError) as exc:
+            _log.error("config_reload_refused", problems=str(exc).splitlines())
+            return
+        fixed_sections = [
+            s for s in ("broker", "storage", "alerts", "health") if getattr(new, s) != getattr(self.config, s)
+        ]
+        if fixed_sections:
+            _log.warning("config_reload_partial", needs_restart=fixed_sections)
+        new = new.model_copy(update={s: getattr(self.config, s) for s in fixed_sections})
+        old_subscriptions = self.subscriptions
+        self._set_charts(new)
+        self.config = new
+        added, changed, removed = [], [], []
+        for chart_id, runtime in list(self.runtimes.items()):
+            template = self.templates.get(runtime.config.id)
+            if template is None or not self.owns(chart_id):
+                del self.runtimes[chart_id]  # its checkpoint stays stored
+                removed.append(chart_id)
+            elif template != runtime.config:
+                fresh = ChartRuntime(chart_id, template, self.alert_settings)
+                notes = fresh.restore(runtime.to_state())
+                self.runtimes[chart_id] = fresh
+                changed.append(chart_id)
+                for note in notes:
+                    _log.warning("chart_reconfigured", chart=chart_id, reason=note)
+        for chart in new.charts:
+            if not chart.placeholders and self.owns(chart.id) and chart.id not in self.runtimes:
+                self.runtime(chart.id, chart)
+                added.append(chart.id)
+        if self.subscriptions != old_subscriptions:
+            await link.update_subscriptions(self.subscriptions)
+        _log.info(
+            "config_reloaded", added=added, changed=changed, removed=removed, subscriptions=self.subscriptions
+        )
+
+
+def _check_daemon_config(config: Config) -> None:
+    """What the daemon needs beyond the schema: a topic per chart and a consistent routing."""
+    missing_topic = [c.id for c in config.charts if not c.topic]
+    if missing_topic:
+        raise ConfigError(f"the daemon needs a topic for every chart; none for {', '.join(missing_topic)}")
+    Router([(c.id, c.topic or "") for c in config.charts])
+
+
+def _filter_of(chart: ChartConfig) -> str:
+    """The subscription filter of a chart (placeholders subscribe as '+')."""
+    return re.sub(r"\{[A-Za-z_][A-Za-z0-9_]*\}", "+", chart.topic or "")
 
 
 def _safe_url(url: str) -> str:
@@ -1098,5 +1288,6 @@ async def run_daemon(config: Config, config_path: Path) -> int:
     loop = asyncio.get_running_loop()
     for number in (signal.SIGTERM, signal.SIGINT):
         loop.add_signal_handler(number, daemon.stop)
+    loop.add_signal_handler(signal.SIGHUP, daemon.request_reload)
     await daemon.run()
     return 0

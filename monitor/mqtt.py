@@ -118,9 +118,11 @@ class MqttLink:
         will: tuple[str, bytes] | None = None,
         online: bytes | None = None,
         queue_size: int = 10_000,
+        forget: Sequence[str] = (),
     ) -> None:
         self.settings = settings
         self.subscriptions = list(dict.fromkeys(subscriptions))
+        self._forget = [f for f in dict.fromkeys(forget) if f not in self.subscriptions]
         self.stats = LinkStats()
         self._will = will
         self._online = online
@@ -184,6 +186,10 @@ class MqttLink:
                     client._client.manual_ack_set(on=True)
                     for topic_filter in self.subscriptions:
                         await client.subscribe(topic_filter, qos=s.qos)
+                    # a persistent session keeps filters of an earlier configuration: drop them
+                    for topic_filter in self._forget:
+                        await client.unsubscribe(topic_filter)
+                    self._forget = []
                     self._generation += 1
                     self._client = client
                     self.stats.connects += 1
@@ -227,6 +233,24 @@ class MqttLink:
             finally:
                 self._connected.clear()
                 self._client = None
+
+    async def update_subscriptions(self, subscriptions: Sequence[str]) -> None:
+        """Subscribe to new filters and drop old ones, now and on every later reconnect."""
+        wanted = list(dict.fromkeys(subscriptions))
+        added = [f for f in wanted if f not in self.subscriptions]
+        dropped = [f for f in self.subscriptions if f not in wanted]
+        self.subscriptions = wanted
+        client = self._client
+        if client is None:
+            self._forget = [*self._forget, *dropped]
+            return
+        try:
+            for topic_filter in added:
+                await client.subscribe(topic_filter, qos=self.settings.qos)
+            for topic_filter in dropped:
+                await client.unsubscribe(topic_filter)
+        except aiomqtt.MqttError:
+            self._forget = [*self._forget, *dropped]  # the next connect applies both lists
 
     def stop(self) -> None:
         """Make :meth:`run` end at its next reconnect attempt (cancel its task to end it now)."""
