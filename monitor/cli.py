@@ -93,18 +93,34 @@ def cmd_check(args: argparse.Namespace) -> int:
         "alerts": f"{a.prefix}/alerts/<chart>, states on {a.prefix}/status/<chart>, "
         f"acknowledgements on {a.prefix}/ack/<chart>",
     }
+    from monitor.design import chart_budget  # noqa: PLC0415 - the ARL chains are only needed here
+
+    budgets = [chart_budget(c, budget_per_day=a.false_alarm_budget) for c in config.charts]
     if args.json:
-        print(json.dumps({"valid": True, **daemon, "charts": summary, "advisory": ADVISORY}, indent=2))
+        charts = [{**item, "budget": b.to_json()} for item, b in zip(summary, budgets, strict=True)]
+        print(json.dumps({"valid": True, **daemon, "charts": charts, "advisory": ADVISORY}, indent=2))
         return EXIT_OK
     print(f"{args.config}: valid, {len(summary)} chart(s)")
     for key, value in daemon.items():
         print(f"  {key + ':':9s}{value}")
-    for item in summary:
+    for item, budget in zip(summary, budgets, strict=True):
         print(f"\n{item['id']}" + (f"  (topic {item['topic']})" if item["topic"] else ""))
         print(f"  subgroups: {item['subgroup']}")
         print(f"  kinds:     {', '.join(item['kinds'] or [])}")
         print(f"  limits:    {item['limits']}")
         print(f"  rules:     {', '.join(item['rules'] or [])}")
+        for panel in budget.panels:
+            print(f"  in-control ARL, {panel.panel}: {panel.arl:.4g} subgroups ({panel.method})")
+        if budget.false_alarms_per_day is not None and budget.false_alarms_per_shift is not None:
+            day, shift = budget.false_alarms_per_day, budget.false_alarms_per_shift
+            print(
+                "  false alarms expected (normal process, panels combined, about): "
+                f"{day:.3g} a day, {shift:.3g} an 8-hour shift"
+            )
+        if budget.note:
+            print(f"  note:      {budget.note}")
+        if budget.warning:
+            print(f"  WARNING:   {budget.warning}")
     print(f"\n{ADVISORY}")
     return EXIT_OK
 
@@ -180,6 +196,128 @@ def cmd_run(args: argparse.Namespace) -> int:
     return asyncio.run(run_daemon(config, Path(args.config)))
 
 
+# ---------------------------------------------------------------- design
+
+
+def _print_result(args: argparse.Namespace, result: dict[str, object], lines: list[str]) -> int:
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        print("\n".join(lines))
+    return EXIT_OK
+
+
+def cmd_design_arl(args: argparse.Namespace) -> int:
+    """The average run length of one chart design at a shift."""
+    from monitor.spc import rule_preset  # noqa: PLC0415
+    from monitor.spc.arl import cusum_arl, ewma_arl, shewhart_arl  # noqa: PLC0415
+
+    if args.chart == "cusum":
+        run = cusum_arl(args.k, args.h, shift=args.shift, head_start=args.head_start)
+        params: dict[str, object] = {"k": args.k, "h": args.h, "head_start": args.head_start}
+    elif args.chart == "ewma":
+        run = ewma_arl(
+            args.smoothing,
+            args.width,
+            shift=args.shift,
+            fast_initial_response=args.fast_initial_response,
+            time_varying_limits=args.time_varying_limits,
+        )
+        params = {"lambda": args.smoothing, "width": args.width}
+    else:
+        rules = rule_preset(args.rules)
+        run = shewhart_arl(rules, limit_sigma=args.limit_sigma, shift=args.shift)
+        params = {"rules": [r.id.value for r in rules], "limit_sigma": args.limit_sigma}
+    result: dict[str, object] = {
+        "chart": args.chart,
+        "params": params,
+        "shift": args.shift,
+        "arl": run.arl,
+        "sd": run.sd,
+        "method": run.method,
+        "error": run.error,
+        "parent": "normal",
+    }
+    line = f"{args.chart} ARL at a shift of {args.shift:g} sigma: {run.arl:.4g} subgroups ({run.method})"
+    return _print_result(args, result, [line])
+
+
+def cmd_design_recommend(args: argparse.Namespace) -> int:
+    """The EWMA or CUSUM design that detects a shift fastest for a wanted in-control ARL."""
+    from monitor.spc.arl import recommend_cusum, recommend_ewma  # noqa: PLC0415
+
+    design = (
+        recommend_ewma(args.arl0, args.shift)
+        if args.chart == "ewma"
+        else recommend_cusum(args.arl0, args.shift)
+    )
+    params = {("lambda" if k == "smoothing" else k): v for k, v in design.params.items()}
+    result: dict[str, object] = {
+        "chart": design.chart,
+        **params,
+        "params": params,
+        "arl0": design.arl0,
+        "arl1": design.arl1,
+        "shift": design.shift,
+    }
+    shown = ", ".join(f"{k} = {v:.4g}" for k, v in params.items())
+    lines = [
+        f"{design.chart}: {shown}",
+        f"  in-control ARL {design.arl0:.4g}; ARL at a shift of {design.shift:g} sigma: {design.arl1:.4g}",
+    ]
+    return _print_result(args, result, lines)
+
+
+def _add_design(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    design = commands.add_parser(
+        "design",
+        help="average run lengths, tail probabilities and chart designs",
+        description="Calculations for choosing chart parameters (normal process unless a parent is given).",
+    )
+    tools = design.add_subparsers(dest="design", required=True, metavar="CALCULATION")
+    arl = tools.add_parser(
+        "arl",
+        help="average run length of a chart at a mean shift",
+        epilog=(
+            "examples:\n"
+            "  monitor design arl --chart cusum --k 0.5 --h 4 --shift 1.0 --json\n"
+            "  monitor design arl --chart ewma --lambda 0.1 --width 2.814 --shift 0 --json\n"
+            "  monitor design arl --chart shewhart --rules western-electric --shift 0 --json"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    arl.add_argument("--chart", required=True, choices=["shewhart", "ewma", "cusum"])
+    arl.add_argument("--shift", type=float, default=0.0, help="mean shift in sigma of the plotted point")
+    arl.add_argument("--rules", default="western-electric", help="shewhart: western-electric, nelson or none")
+    arl.add_argument("--limit-sigma", type=float, default=3.0, help="shewhart: limits at this many sigma")
+    arl.add_argument(
+        "--lambda", dest="smoothing", type=float, default=0.2, help="ewma: weight of the newest point"
+    )
+    arl.add_argument("--width", type=float, default=3.0, help="ewma: limits at this many sigma of the EWMA")
+    arl.add_argument("--fast-initial-response", action="store_true", help="ewma: narrowed first limits")
+    arl.add_argument(
+        "--time-varying-limits", action="store_true", help="ewma: exact limits from the first point"
+    )
+    arl.add_argument("--k", type=float, default=0.5, help="cusum: reference value")
+    arl.add_argument("--h", type=float, default=5.0, help="cusum: decision interval")
+    arl.add_argument("--head-start", type=float, default=0.0, help="cusum: starting value of both sums")
+    arl.add_argument("--json", action="store_true")
+    arl.set_defaults(run=cmd_design_arl)
+    recommend = tools.add_parser(
+        "recommend",
+        help="EWMA or CUSUM parameters for a wanted in-control ARL and a shift to detect",
+        epilog="examples:\n  monitor design recommend --chart ewma --arl0 500 --shift 1.0 --json",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    recommend.add_argument("--chart", required=True, choices=["ewma", "cusum"])
+    recommend.add_argument("--arl0", type=float, required=True, help="wanted in-control ARL")
+    recommend.add_argument(
+        "--shift", type=float, required=True, help="shift to detect, sigma of the plotted point"
+    )
+    recommend.add_argument("--json", action="store_true")
+    recommend.set_defaults(run=cmd_design_recommend)
+
+
 # ---------------------------------------------------------------- entry point
 
 
@@ -235,6 +373,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--config", required=True, help="YAML configuration file")
     run.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
     run.set_defaults(run=cmd_run)
+    _add_design(commands)
     return parser
 
 

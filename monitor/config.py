@@ -354,6 +354,7 @@ class AlertsConfig(_Strict):
     dead_letters: bool = False
     repeat_every: float = 900.0
     clear_after: Annotated[int, Field(ge=1, le=10_000)] = 5
+    false_alarm_budget: Annotated[float, Field(gt=0)] | None = 1.0
     severity: dict[str, Literal["info", "warning", "critical"]] = {}
 
     @field_validator("repeat_every", mode="before")

@@ -1,0 +1,98 @@
+"""The command line: the design calculations in their documented forms, and check's budgets."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import textwrap
+
+import pytest
+
+
+def monitor(*args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", "monitor", *args], capture_output=True, text=True, check=False, timeout=180
+    )
+
+
+def as_json(*args: str) -> dict[str, object]:
+    result = monitor(*args)
+    assert result.returncode == 0, result.stderr
+    return json.loads(result.stdout)
+
+
+def test_cusum_arl_in_the_documented_form_matches_the_published_table():
+    """Two-sided CUSUM k = 0.5, h = 4 at a 1-sigma shift: ARL 8.38 (Montgomery and Runger table)."""
+    out = as_json("design", "arl", "--chart", "cusum", "--k", "0.5", "--h", "4", "--shift", "1.0", "--json")
+    assert round(out["arl"], 2) == 8.38
+
+
+def test_ewma_arl_in_the_documented_form_matches_lucas_and_saccucci():
+    """EWMA lambda = 0.10, L = 2.814 in control: ARL 500 (Lucas and Saccucci 1990, via Montgomery)."""
+    out = as_json(
+        "design", "arl", "--chart", "ewma", "--lambda", "0.1", "--width", "2.814", "--shift", "0", "--json"
+    )
+    assert out["arl"] == pytest.approx(500, abs=1)
+
+
+def test_shewhart_arl_with_and_without_the_western_electric_rules():
+    """91.75 with the four Western Electric rules (Champ and Woodall 1987); 370.4 for the point rule alone."""
+    with_rules = as_json(
+        "design", "arl", "--chart", "shewhart", "--rules", "western-electric", "--shift", "0", "--json"
+    )
+    alone = as_json("design", "arl", "--chart", "shewhart", "--rules", "none", "--shift", "0", "--json")
+    assert round(with_rules["arl"], 2) == 91.75
+    assert round(alone["arl"], 1) == 370.4
+
+
+def test_recommend_gives_designs_that_meet_the_wanted_in_control_arl():
+    """The recommended EWMA and CUSUM designs have the requested in-control ARL and report ARL1."""
+    ewma = as_json("design", "recommend", "--chart", "ewma", "--arl0", "500", "--shift", "1.0", "--json")
+    cusum = as_json("design", "recommend", "--chart", "cusum", "--arl0", "465", "--shift", "1.0", "--json")
+    assert ewma["arl0"] == pytest.approx(500, rel=1e-3)
+    assert 0 < ewma["lambda"] <= 1
+    assert ewma["arl1"] < 20
+    # k = 0.5 and h = 5 give an in-control ARL of 465 (Montgomery and Runger table)
+    assert cusum["k"] == 0.5
+    assert cusum["h"] == pytest.approx(5.0, abs=0.01)
+
+
+def test_check_prints_in_control_arls_and_warns_about_a_trigger_happy_chart(tmp_path):
+    """check shows each panel's in-control ARL, false alarms a day at the sampling rate, and the budget warning."""
+    config = tmp_path / "plant.yaml"
+    config.write_text(
+        textwrap.dedent(
+            """\
+            alerts: {false_alarm_budget: 2}
+            charts:
+              - id: calm
+                subgroup: {size: 5}
+                kinds: [xbar_r]
+                limits: {mean: 0, sigma: 1}
+                rules: none
+                readings_every: 5m
+              - id: nervous
+                subgroup: {size: 5}
+                kinds: [xbar_r]
+                limits: {mean: 0, sigma: 1}
+                rules: western-electric
+                readings_every: 1s
+            """
+        )
+    )
+    result = monitor("check", "--config", str(config), "--json")
+    assert result.returncode == 0, result.stderr
+    charts = {c["id"]: c["budget"] for c in json.loads(result.stdout)["charts"]}
+    calm, nervous = charts["calm"], charts["nervous"]
+    # calm: 86400 / (300 s x 5) = 57.6 subgroups a day; the mean's 370.4 and the range's rate combine
+    assert calm["subgroups_per_day"] == pytest.approx(57.6)
+    assert calm["panels"][0]["arl"] == pytest.approx(370.4, abs=0.1)
+    assert calm["false_alarms_per_day"] == pytest.approx(57.6 / calm["combined_arl"])
+    assert calm["warning"] is None
+    assert nervous["panels"][0]["arl"] == pytest.approx(91.75, abs=0.01)
+    assert nervous["warning"] is not None
+    text = monitor("check", "--config", str(config)).stdout
+    assert "false alarms expected" in text
+    assert "WARNING" in text
+    assert "not a safety system" in text
