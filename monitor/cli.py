@@ -17,7 +17,7 @@ from typing import IO
 
 from monitor.alerts import ADVISORY
 from monitor.config import ChartConfig, Config, ConfigProblems, load_config, storage_url
-from monitor.replay import DataError, ReplaySummary, replay
+from monitor.replay import ChartReplay, DataError, ReplaySummary, replay
 from monitor.spc import ChartKind, MonitorError, constants
 
 __all__ = ["ADVISORY", "main"]
@@ -128,6 +128,22 @@ def cmd_check(args: argparse.Namespace) -> int:
 # ---------------------------------------------------------------- replay
 
 
+class _Progress:
+    """A progress bar over the charts of a replay (on a terminal only)."""
+
+    def __init__(self, total: int) -> None:
+        from tqdm import tqdm  # noqa: PLC0415 - only interactive replays show progress
+
+        self._bar = tqdm(total=total, unit="chart", file=sys.stderr, leave=False)
+
+    def __call__(self, chart: str) -> None:
+        self._bar.set_description_str(chart)
+        self._bar.update(1)
+
+    def close(self) -> None:
+        self._bar.close()
+
+
 def _print_summary(summary: ReplaySummary, stream: IO[str]) -> None:
     for chart in summary.charts:
         print(f"{chart.chart}: {chart.readings} readings, {chart.subgroups} subgroups", file=stream)
@@ -156,6 +172,7 @@ def _print_summary(summary: ReplaySummary, stream: IO[str]) -> None:
             print("  no signals", file=stream)
         for (kind, statistic, rule), count in sorted(chart.signals.items()):
             print(f"  {count:6d}  {rule} on {statistic} ({kind})", file=stream)
+        _print_rates(chart, stream)
     if summary.rows_skipped:
         print(f"{summary.rows_skipped} rows skipped:", file=stream)
         for problem in summary.problems:
@@ -166,17 +183,55 @@ def _print_summary(summary: ReplaySummary, stream: IO[str]) -> None:
         print(f"{summary.unrouted} rows matched no configured chart", file=stream)
 
 
+def _print_rates(chart: ChartReplay, stream: IO[str]) -> None:
+    if not chart.rates:
+        return
+    stretch = "labelled in control" if chart.labelled else "all charted, no labels: assumed in control"
+    print(
+        f"  false alarms over {chart.in_control_subgroups} subgroups ({stretch}); "
+        "expected for a normal process:",
+        file=stream,
+    )
+    for rate in chart.rates:
+        expected = "-" if rate.expected is None else f"{rate.expected:.3g}"
+        ratio = ""
+        if rate.expected:
+            ratio = f"  ({rate.observed / rate.expected:.2g} x)"
+        print(
+            f"    {rate.rule} on {rate.statistic}: {rate.observed} observed, {expected} expected{ratio}",
+            file=stream,
+        )
+    for change in chart.changes:
+        if change.first_signal is None:
+            print(f"  change {change.label!r} at subgroup {change.subgroup}: no signal after it", file=stream)
+            continue
+        seconds = "" if change.delay_seconds is None else f", {change.delay_seconds:.0f} s"
+        print(
+            f"  change {change.label!r} at subgroup {change.subgroup}: first signal at subgroup "
+            f"{change.first_signal} ({change.rule}), {change.delay_subgroups} subgroups later{seconds}",
+            file=stream,
+        )
+
+
 def cmd_replay(args: argparse.Namespace) -> int:
     """Replay a file of readings through the configured charts."""
     config = _load(args.config)
-    if args.out:
-        out_path = Path(args.out)
-        out_path.parent.mkdir(parents=True, exist_ok=True)
-        with out_path.open("wb") as out:
-            summary = replay(config, args.data, out, points=not args.signals_only)
-    else:
-        summary = replay(config, args.data, sys.stdout.buffer, points=not args.signals_only)
-        sys.stdout.flush()
+    show = sys.stderr.isatty() and not args.quiet
+    progress = _Progress(len(config.charts)) if show else None
+    try:
+        if args.out:
+            out_path = Path(args.out)
+            out_path.parent.mkdir(parents=True, exist_ok=True)
+            with out_path.open("wb") as out:
+                summary = replay(config, args.data, out, points=not args.signals_only, progress=progress)
+        else:
+            summary = replay(
+                config, args.data, sys.stdout.buffer, points=not args.signals_only, progress=progress
+            )
+            sys.stdout.flush()
+    finally:
+        if progress is not None:
+            progress.close()
     _print_summary(summary, sys.stderr)
     return EXIT_OK
 
@@ -358,6 +413,7 @@ def build_parser() -> argparse.ArgumentParser:
     rep.add_argument("--data", required=True, help="CSV or Parquet file of readings")
     rep.add_argument("--out", help="write the JSON lines here instead of standard output")
     rep.add_argument("--signals-only", action="store_true", help="leave out the plotted points")
+    rep.add_argument("--quiet", action="store_true", help="no progress bar")
     rep.set_defaults(run=cmd_replay)
 
     run = commands.add_parser(

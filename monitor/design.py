@@ -21,7 +21,7 @@ from monitor.spc.arl import RunLength, cusum_arl, ewma_arl, shewhart_arl
 from monitor.spc.charts._math import range_limits, sd_limits
 from monitor.spc.constants import range_cdf
 
-__all__ = ["ChartBudget", "PanelRunLength", "chart_budget"]
+__all__ = ["ChartBudget", "PanelRunLength", "chart_budget", "spread_rate"]
 
 SECONDS_PER_DAY = 86_400.0
 SHIFT_HOURS = 8.0
@@ -61,6 +61,11 @@ class ChartBudget:
             "warning": self.warning,
             "note": self.note,
         }
+
+
+def spread_rate(chart: ChartConfig, n: int) -> float:
+    """Per-subgroup probability that the spread panel signals (normal readings)."""
+    return 1.0 / _spread_arl(chart, n).arl
 
 
 def _spread_arl(chart: ChartConfig, n: int) -> PanelRunLength:

@@ -31,6 +31,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
+from scipy import special
 
 from monitor.config import ChartConfig, Config
 from monitor.spc import (
@@ -76,6 +77,9 @@ class ReadingTable:
     lines: NDArray[np.int64]
     problems: list[RowProblem] = field(default_factory=list)
     problem_count: int = 0
+    labels: NDArray[np.int64] | None = None
+    """Per row, an index into ``label_names`` (the optional ``label`` column)."""
+    label_names: list[str] = field(default_factory=list)
 
 
 def _load_arrow(path: Path) -> tuple[pa.Table, int]:
@@ -194,6 +198,13 @@ def read_table(path: str | Path) -> ReadingTable:
             reason = "exposure is not a positive number"
         problems.append(RowProblem(int(lines[pos]), reason))
     good = ~bad
+    labels, label_names = None, []
+    if "label" in names:
+        encoded_labels = pc.dictionary_encode(
+            table.column("label").cast(pa.string()).fill_null("")
+        ).combine_chunks()
+        labels = np.asarray(encoded_labels.indices.to_numpy(zero_copy_only=False), dtype=np.int64)[good]
+        label_names = [str(x) for x in encoded_labels.dictionary.to_pylist()]
     return ReadingTable(
         key_column=key_column,
         keys=keys,
@@ -204,6 +215,8 @@ def read_table(path: str | Path) -> ReadingTable:
         lines=lines[good],
         problems=problems,
         problem_count=int(bad.sum()),
+        labels=labels,
+        label_names=label_names,
     )
 
 
@@ -237,6 +250,39 @@ class ChartReplay:
     signals: Counter[tuple[str, str, str]] = field(default_factory=Counter)
     estimate: PhaseOneEstimate | None = None
     monitoring_from: int | None = None
+    labelled: bool = False
+    in_control_subgroups: int = 0
+    rates: list[RuleRate] = field(default_factory=list)
+    changes: list[ChangeDetection] = field(default_factory=list)
+
+
+IN_CONTROL_LABELS = frozenset({"", "in control", "in-control", "in_control", "normal", "ok", "baseline"})
+"""Labels (case-insensitive) that mean the process was in control; any other label is a change."""
+
+
+@dataclass(frozen=True, slots=True)
+class RuleRate:
+    """Signals of one rule on one panel over the in-control stretches, and how many to expect."""
+
+    kind: str
+    statistic: str
+    rule: str
+    observed: int
+    expected: float | None
+    """Under a normal in-control process (None where not computed)."""
+
+
+@dataclass(frozen=True, slots=True)
+class ChangeDetection:
+    """A labelled change and the first signal at or after it."""
+
+    label: str
+    subgroup: int
+    time: float | None
+    first_signal: int | None
+    rule: str | None
+    delay_subgroups: int | None
+    delay_seconds: float | None
 
 
 def _count_batch(
@@ -406,6 +452,101 @@ class ReplaySummary:
     unrouted: int
 
 
+def _subgroup_labels(
+    batch: SubgroupBatch, times: NDArray[np.float64], labels: NDArray[np.int64], names: list[str]
+) -> list[str]:
+    """The label in force at each subgroup's end: that of the latest reading by then."""
+    order = np.argsort(times, kind="stable")
+    ordered_times, ordered_labels = times[order], labels[order]
+    ends = batch.end if batch.end is not None else np.full(len(batch), np.inf)
+    positions = np.searchsorted(ordered_times, ends, side="right") - 1
+    positions = np.clip(positions, 0, max(0, ordered_times.shape[0] - 1))
+    return [names[int(ordered_labels[p])] if ordered_labels.shape[0] else "" for p in positions.tolist()]
+
+
+def _expected_rate(chart: ChartConfig, statistic: str, rule: str, n: int) -> float | None:
+    """Per-subgroup probability that a rule fires on a panel of a normal in-control process."""
+    from monitor.design import spread_rate  # noqa: PLC0415 - the ARL machinery only when judging
+    from monitor.spc.arl import cusum_tail  # noqa: PLC0415
+    from monitor.spc.pvalues import pattern_probability  # noqa: PLC0415
+
+    if statistic in ("mean", "individual", "proportion", "rate"):
+        found = next((r for r in chart.rule_objects() if r.id.value == rule), None)
+        return None if found is None else pattern_probability(found, chart.limit_sigma)
+    if statistic in ("range", "sd", "moving_range"):
+        return spread_rate(chart, n)
+    if statistic == "ewma":
+        # the EWMA of a normal process is normal with the variance its limits use, at every t
+        return float(2.0 * special.ndtr(-chart.ewma.width))
+    if statistic in ("cusum_upper", "cusum_lower"):
+        c = chart.cusum
+        if statistic == "cusum_upper":
+            return cusum_tail(c.k, c.h, c.h, side="upper")
+        return cusum_tail(c.k, c.h, c.h, side="lower")  # stationary P(sum >= h): a signal while above
+    return None
+
+
+def _judge(
+    chart: ChartConfig,
+    batch: SubgroupBatch,
+    result: SetResult,
+    report: ChartReplay,
+    times: NDArray[np.float64],
+    labels: NDArray[np.int64] | None,
+    names: list[str],
+) -> None:
+    """Observed against expected signals over in-control stretches, and detection of labelled changes."""
+    first = report.monitoring_from
+    if first is None or len(batch) <= first:
+        return
+    report.labelled = labels is not None
+    subgroup_labels = (
+        _subgroup_labels(batch, times, labels, names) if labels is not None else [""] * len(batch)
+    )
+    quiet = [label.strip().lower() in IN_CONTROL_LABELS for label in subgroup_labels]
+    charted = range(first, len(batch))
+    report.in_control_subgroups = sum(1 for i in charted if quiet[i])
+    n = int(np.median(batch.sizes)) if len(batch) else 1
+    observed: Counter[tuple[str, str, str]] = Counter()
+    for signal in result.signals:
+        if quiet[signal.subgroup]:
+            observed[(signal.chart.value, signal.statistic.value, signal.rule.value)] += 1
+    panels = {(k.value, s.value) for k, traces in result.traces.items() for s in traces}
+    location = ("mean", "individual", "proportion", "rate")
+    rules = [r.id.value for r in chart.rule_objects()]
+    wanted: set[tuple[str, str, str]] = set(observed)
+    for kind, statistic in panels:
+        for rule in rules if statistic in location else ["beyond_limits"]:
+            wanted.add((kind, statistic, rule))
+    for key in sorted(wanted):
+        rate = _expected_rate(chart, key[1], key[2], n)
+        expected = None if rate is None else rate * report.in_control_subgroups
+        report.rates.append(RuleRate(key[0], key[1], key[2], observed[key], expected))
+    if labels is None:
+        return
+    signal_at = sorted((s.subgroup, s.rule.value) for s in result.signals)
+    ends = batch.end
+    for i in charted:
+        if quiet[i] or (i > first and subgroup_labels[i] == subgroup_labels[i - 1]):
+            continue
+        after = next(((g, rule) for g, rule in signal_at if g >= i), None)
+        start_time = None if ends is None else float(ends[i])
+        delay_seconds = None
+        if after is not None and ends is not None:
+            delay_seconds = float(ends[after[0]]) - float(ends[i])
+        report.changes.append(
+            ChangeDetection(
+                label=subgroup_labels[i],
+                subgroup=i,
+                time=start_time,
+                first_signal=None if after is None else after[0],
+                rule=None if after is None else after[1],
+                delay_subgroups=None if after is None else after[0] - i,
+                delay_seconds=delay_seconds,
+            )
+        )
+
+
 def replay(
     config: Config,
     data: str | Path,
@@ -448,6 +589,8 @@ def replay(
             report.monitoring_from = 0 if plan is None else min(plan.subgroups, len(batch))
         for signal in result.signals:
             report.signals[(signal.chart.value, signal.statistic.value, signal.rule.value)] += 1
+        chart_labels = None if table.labels is None else table.labels[rows]
+        _judge(chart, batch, result, report, times, chart_labels, table.label_names)
         if out is not None:
             for line in _lines(chart.id, batch, result, 0, points):
                 out.write(orjson.dumps(line))

@@ -90,6 +90,18 @@ def _value(rng: np.random.Generator, chart: str, elapsed: float) -> tuple[float,
     return float(rng.binomial(200, p)), 200.0
 
 
+def condition(chart: str, elapsed: float) -> str:
+    """The label of the plant's condition at a reading: in control, or the trouble it has."""
+    minute = elapsed / 60.0
+    trouble = {
+        "press-1/thickness": (10.0, "die inserts wearing"),
+        "press-2/thickness": (20.0, "new powder lot"),
+        "kiln-1/zone-3-temperature": (30.0, "burner fluttering"),
+        "sort-1/rejects": (30.0, "kiln trouble"),
+    }.get(chart)
+    return trouble[1] if trouble is not None and minute > trouble[0] else "in control"
+
+
 def readings(minutes: float, seed: int = 7) -> Iterator[Reading]:
     """All readings of the plant in time order over ``minutes`` of plant time."""
     rng = np.random.default_rng(seed)
@@ -114,9 +126,10 @@ def write_csv(path: Path, minutes: float, seed: int) -> int:
     count = 0
     with path.open("w", newline="") as handle:
         writer = csv.writer(handle)
-        writer.writerow(["chart", "timestamp", "value", "exposure"])
+        writer.writerow(["chart", "timestamp", "value", "exposure", "label"])
         for r in readings(minutes, seed):
-            writer.writerow([r.chart, _iso(r.time), r.value, "" if r.exposure is None else r.exposure])
+            exposure = "" if r.exposure is None else r.exposure
+            writer.writerow([r.chart, _iso(r.time), r.value, exposure, condition(r.chart, r.elapsed)])
             count += 1
     return count
 

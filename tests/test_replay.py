@@ -255,3 +255,112 @@ def test_time_windows_in_replay_match_the_streaming_window_former(tmp_path):
     # window [10,20): 3, 5, 7; window [20,30): 8, 9
     assert means == [pytest.approx(7 / 3), pytest.approx(5.0), pytest.approx(8.5)]
     assert summary.charts[0].late == 1
+
+
+LABELLED_CONFIG = """\
+charts:
+  - id: kiln-7/exit-temperature
+    subgroup: {size: 1}
+    kinds: [individuals_mr]
+    limits: {mean: 900.0, sigma: 4.0}
+    rules: [beyond_limits]
+"""
+
+
+def write_labelled(path: Path, values: np.ndarray, labels: list[str]) -> None:
+    with path.open("w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["chart", "timestamp", "value", "label"])
+        for k, (value, label) in enumerate(zip(values.tolist(), labels, strict=True)):
+            stamp = (START + timedelta(seconds=10 * k)).isoformat().replace("+00:00", "Z")
+            writer.writerow(["kiln-7/exit-temperature", stamp, f"{value:.4f}", label])
+
+
+def test_false_alarms_on_labelled_in_control_stretch_match_the_normal_rate(tmp_path):
+    """Over a long in-control stretch, observed beyond-limits signals agree with 0.0027 per point.
+
+    0.0027 = 2 * Phi(-3), the two-sided 3-sigma tail of the normal law (Montgomery, Introduction to
+    Statistical Quality Control, section 5.3: in-control ARL 370). The check is a Poisson 99.9 %
+    interval around the expected count, so a wrong rate or a wrong stretch length fails it.
+    """
+    rng = np.random.default_rng(20261202)
+    quiet = 20_000
+    values = np.concatenate([rng.normal(900.0, 4.0, quiet), rng.normal(900.0 + 3 * 4.0, 4.0, 200)])
+    labels = ["in control"] * quiet + ["burner fluttering"] * 200
+    data = tmp_path / "kiln.csv"
+    write_labelled(data, values, labels)
+    summary = replay(load_config_text(LABELLED_CONFIG, "kiln.yaml"), data, None)
+    (chart,) = summary.charts
+    assert chart.labelled
+    assert chart.in_control_subgroups == quiet
+    rates = {(r.statistic, r.rule): r for r in chart.rates}
+    individual = rates[("individual", "beyond_limits")]
+    from scipy import stats  # noqa: PLC0415
+
+    expected = 2 * stats.norm.sf(3.0) * quiet
+    assert individual.expected == pytest.approx(expected, rel=1e-9)
+    low, high = stats.poisson.interval(0.999, expected)
+    assert low <= individual.observed <= high
+    # the observed count is the signals inside the in-control stretch only, not those after the change
+    total = chart.signals[("individuals_mr", "individual", "beyond_limits")]
+    assert individual.observed < total
+    assert ("moving_range", "beyond_limits") in rates
+
+
+def test_labelled_changes_report_the_first_signal_after_them(tmp_path):
+    """A labelled 3-sigma shift is flagged at or after its start, with the delay in subgroups and seconds."""
+    rng = np.random.default_rng(7)
+    values = np.concatenate(
+        [
+            rng.normal(900.0, 4.0, 300),
+            rng.normal(900.0 + 5 * 4.0, 4.0, 50),  # a large shift: caught within a few points
+            rng.normal(900.0, 4.0, 300),
+            rng.normal(900.0, 4.0, 50),  # labelled trouble that never shows: no signal expected here
+        ]
+    )
+    labels = ["ok"] * 300 + ["burner fluttering"] * 50 + ["ok"] * 300 + ["thermocouple check"] * 50
+    data = tmp_path / "kiln.csv"
+    write_labelled(data, values, labels)
+    summary = replay(load_config_text(LABELLED_CONFIG, "kiln.yaml"), data, None)
+    (chart,) = summary.charts
+    changes = {c.label: c for c in chart.changes}
+    assert set(changes) == {"burner fluttering", "thermocouple check"}
+    shift = changes["burner fluttering"]
+    assert shift.subgroup == 300
+    assert shift.first_signal is not None
+    assert 300 <= shift.first_signal < 310
+    assert shift.delay_subgroups == shift.first_signal - 300
+    assert shift.delay_seconds == pytest.approx(10.0 * shift.delay_subgroups)
+    assert shift.rule == "beyond_limits"
+    assert changes["thermocouple check"].subgroup == 650
+
+
+def test_replay_summary_prints_rates_and_changes(tmp_path):
+    """The command line shows observed against expected false alarms and each change's detection."""
+    config = tmp_path / "kiln.yaml"
+    config.write_text(LABELLED_CONFIG)
+    rng = np.random.default_rng(11)
+    values = np.concatenate([rng.normal(900.0, 4.0, 500), rng.normal(930.0, 4.0, 20)])
+    data = tmp_path / "kiln.csv"
+    write_labelled(data, values, ["in control"] * 500 + ["burner fluttering"] * 20)
+    result = run_cli("replay", "--config", str(config), "--data", str(data), "--signals-only", "--quiet")
+    assert result.returncode == 0, result.stderr
+    assert "false alarms over 500 subgroups (labelled in control)" in result.stderr
+    assert "beyond_limits on individual:" in result.stderr
+    assert "change 'burner fluttering' at subgroup 500: first signal at subgroup 500" in result.stderr
+
+
+def test_without_labels_everything_charted_counts_as_in_control(tmp_path):
+    """No label column: rates are over all charted subgroups and no changes are reported."""
+    rng = np.random.default_rng(5)
+    data = tmp_path / "kiln.csv"
+    with data.open("w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["chart", "timestamp", "value"])
+        for k, value in enumerate(rng.normal(900.0, 4.0, 400).tolist()):
+            writer.writerow(["kiln-7/exit-temperature", 1_700_000_000 + 10 * k, value])
+    summary = replay(load_config_text(LABELLED_CONFIG, "kiln.yaml"), data, None)
+    (chart,) = summary.charts
+    assert not chart.labelled
+    assert chart.in_control_subgroups == 400
+    assert chart.changes == []
