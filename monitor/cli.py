@@ -18,6 +18,7 @@ from typing import IO
 from monitor.alerts import ADVISORY
 from monitor.config import ChartConfig, Config, ConfigProblems, load_config, storage_url
 from monitor.replay import ChartReplay, DataError, ReplaySummary, replay
+from monitor.report import add_report_command
 from monitor.spc import ChartKind, MonitorError, constants
 
 __all__ = ["ADVISORY", "main"]
@@ -251,6 +252,84 @@ def cmd_run(args: argparse.Namespace) -> int:
     return asyncio.run(run_daemon(config, Path(args.config)))
 
 
+# ---------------------------------------------------------------- baseline
+
+
+def cmd_baseline(args: argparse.Namespace) -> int:
+    """Phase I limits for one chart from a file of readings or from its stored history."""
+    import asyncio  # noqa: PLC0415
+
+    from monitor.baseline import parse_moment, print_result, run_baseline  # noqa: PLC0415
+    from monitor.spc import SigmaEstimator  # noqa: PLC0415
+
+    config = _load(args.config)
+    chart = next((c for c in config.charts if c.id == args.chart), None)
+    if chart is None:
+        known = ", ".join(c.id for c in config.charts)
+        print(f"error: no chart {args.chart!r} in {args.config} (charts: {known})", file=sys.stderr)
+        return EXIT_PROBLEM
+    result = asyncio.run(
+        run_baseline(
+            chart,
+            url=storage_url(config, Path(args.config)),
+            data=args.data,
+            since=None if args.since is None else parse_moment(args.since),
+            until=None if args.until is None else parse_moment(args.until),
+            first=args.first,
+            estimator=None if args.sigma_from is None else SigmaEstimator(args.sigma_from),
+            exclude=args.exclude,
+            write=args.save,
+        )
+    )
+    if args.json:
+        print(json.dumps(result.to_json(), indent=2))
+    else:
+        print_result(result, sys.stdout)
+    return EXIT_OK
+
+
+def _add_baseline(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    baseline = commands.add_parser(
+        "baseline",
+        help="Phase I limits for a chart from good history (a file or the store)",
+        description=(
+            "Estimate a chart's in-control mean and sigma from a stretch of good history: "
+            "subgroups formed from a CSV or Parquet file as the daemon forms them, or the "
+            "subgroups stored by the daemon. Reports excluded subgroups, normality and the "
+            "fitted parent model; --save stores the limits as a new version, which a running "
+            "daemon puts in force within storage.limits_poll seconds."
+        ),
+        epilog=(
+            "examples:\n"
+            "  monitor baseline --config plant.yaml --chart press-1/thickness --data good-week.csv\n"
+            "  monitor baseline --config plant.yaml --chart press-1/thickness \\\n"
+            "      --since 2026-11-23T06:00Z --until 2026-11-30T06:00Z --save\n"
+            "  monitor baseline --config plant.yaml --chart kiln-1/zone-3-temperature --first 50 --json"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    baseline.add_argument("--config", required=True, help="YAML configuration file")
+    baseline.add_argument("--chart", required=True, help="chart id")
+    baseline.add_argument("--data", help="CSV or Parquet file of readings (default: the stored history)")
+    baseline.add_argument("--since", help="only subgroups ending at or after this time (ISO 8601)")
+    baseline.add_argument("--until", help="only subgroups ending before this time (ISO 8601)")
+    baseline.add_argument("--first", type=int, help="only the first N subgroups (after --since)")
+    baseline.add_argument(
+        "--sigma-from",
+        choices=["range", "sd", "pooled", "moving_range"],
+        help="sigma estimator (default: the chart's)",
+    )
+    baseline.add_argument(
+        "--exclude",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="leave out out-of-control subgroups and estimate again (default: the chart's setting)",
+    )
+    baseline.add_argument("--save", action="store_true", help="store the limits as a new version")
+    baseline.add_argument("--json", action="store_true", help="print the result as JSON")
+    baseline.set_defaults(run=cmd_baseline)
+
+
 # ---------------------------------------------------------------- design
 
 
@@ -429,6 +508,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--config", required=True, help="YAML configuration file")
     run.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
     run.set_defaults(run=cmd_run)
+    add_report_command(commands)
+    _add_baseline(commands)
     _add_design(commands)
     return parser
 

@@ -341,9 +341,19 @@ class BrokerConfig(_Strict):
 
 
 class StorageConfig(_Strict):
-    """Where everything is stored: a SQLAlchemy URL (default: a SQLite file next to this file)."""
+    """Where everything is stored: a SQLAlchemy URL (default: a SQLite file next to this file).
+
+    ``limits_poll``: how often the daemon looks for new limits versions in the store (written
+    by ``monitor baseline --save``) and puts them in force.
+    """
 
     url: str | None = None
+    limits_poll: Annotated[float, Field(ge=0.5, le=3600)] = 5.0
+
+    @field_validator("limits_poll", mode="before")
+    @classmethod
+    def _poll_duration(cls, value: object) -> object:
+        return parse_duration(value)
 
 
 class AlertsConfig(_Strict):

@@ -62,8 +62,11 @@ from monitor.mqtt import BrokerSettings, Incoming, MqttLink, PublishError, TlsSe
 from monitor.sharding import owns, shard_client_id, shard_from_environment
 from monitor.spc import (
     ChartSet,
+    ChartSpec,
     ConfigError,
     CountSubgrouper,
+    PhaseOneEstimate,
+    ProcessParameters,
     Reading,
     ReadingError,
     Signal,
@@ -309,6 +312,7 @@ class ChartRuntime:
         self.floods = 0
         self.carried: list[Reading] = []
         self.new_settings = False
+        self.refused_versions: set[int] = set()
         self.last_minute_readings = 0
         self._window_start = 0.0
         self._window_count = 0
@@ -364,8 +368,10 @@ class ChartRuntime:
             next_index = set_state.get("next_index")
             first = next_index if isinstance(next_index, int) else 0
             self.chart_set = ChartSet(self.spec, first_index=first)
-            self.new_settings = True
-            notes.append(f"chart settings changed ({exc}); charting continues at subgroup {first}")
+            kept = self._keep_limits(set_state)
+            self.new_settings = not kept
+            limits = "limits kept" if kept else "new limits"
+            notes.append(f"chart settings changed ({exc}); charting continues at subgroup {first}, {limits}")
         try:
             self.tracker = AlertTracker.from_state(self.chart_id, self.alert_settings, tracker_state)
         except (StateError, ValueError) as exc:
@@ -391,6 +397,30 @@ class ChartRuntime:
                 setattr(self, name, value)
         self.dirty = bool(notes)
         return notes
+
+    def _keep_limits(self, set_state: Mapping[str, object]) -> bool:
+        """Carry the old parameters into the new chart set if the limit settings did not change."""
+        old_spec, old_parameters = set_state.get("spec"), set_state.get("parameters")
+        if not isinstance(old_spec, dict) or not isinstance(old_parameters, dict):
+            return False
+        if ChartSpec.limit_settings(old_spec) != ChartSpec.limit_settings(self.spec.to_state()):
+            return False
+        old_estimate = set_state.get("estimate")
+        try:
+            estimate = PhaseOneEstimate.from_state(old_estimate) if isinstance(old_estimate, dict) else None
+            self.chart_set.adopt(ProcessParameters.from_state(old_parameters), estimate)
+        except (StateError, ConfigError, ValueError, KeyError):
+            return False
+        return True
+
+    def adopt_limits(self, row: LimitsRow) -> None:
+        """Judge from the next subgroup on against a stored limits version (a new baseline)."""
+        source = row.source if row.source in ("standard", "baseline") else "baseline"
+        self.chart_set.adopt(ProcessParameters(row.mean, row.sigma, source=source))
+        self.limits_version = row.version
+        self.new_settings = False
+        self.dirty = True
+        self.status_dirty = True
 
     # -- readings
 
@@ -470,8 +500,22 @@ class ChartRuntime:
         if chart_set.monitoring and (self.limits_version == 0 or self.new_settings):
             self.new_settings = False
             self._new_limits(now_ms, out)
+        attribute = self.spec.attribute is not None
+        exposures = subgroup.exposures if attribute else None
         if not charted:
             self.status_dirty = True
+            out.subgroups.append(
+                SubgroupRow(
+                    chart=self.chart_id,
+                    index=index,
+                    start_ms=_ms(subgroup.start),
+                    end_ms=_ms(subgroup.end),
+                    n=subgroup.n,
+                    points={},
+                    values=subgroup.values,
+                    exposures=exposures,
+                )
+            )
             return
         points: dict[str, object] = {
             kind.value: {
@@ -488,6 +532,8 @@ class ChartRuntime:
                 end_ms=_ms(subgroup.end),
                 n=subgroup.n,
                 points=points,
+                values=subgroup.values,
+                exposures=exposures,
             )
         )
         contexts = [self._context(s, subgroup) for s in signals]
@@ -660,6 +706,9 @@ class Daemon:
         self.link: MqttLink | None = None
         self._checkpoints: dict[str, dict[str, object]] = {}
         self._positions: dict[str, tuple[int, int]] = {}
+        self._stored_limits: dict[str, LimitsRow] = {}
+        self._limits_checked = 0.0
+        self._limits_poll = config.storage.limits_poll
         self._dead_letters: deque[tuple[str, dict[str, object]]] = deque(maxlen=1000)
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
@@ -721,7 +770,43 @@ class Daemon:
             runtime = ChartRuntime(chart_id, template, self.alert_settings, first_index=next_index)
             runtime.limits_version = version
         self.runtimes[chart_id] = runtime
+        self._sync_limits(runtime)
         return runtime
+
+    def _sync_limits(self, runtime: ChartRuntime) -> bool:
+        """Put in force a stored limits version newer than the chart's; True if it did."""
+        row = self._stored_limits.get(runtime.chart_id)
+        if row is None or row.version <= runtime.limits_version or row.version in runtime.refused_versions:
+            return False
+        try:
+            runtime.adopt_limits(row)
+        except ConfigError as exc:
+            runtime.refused_versions.add(row.version)
+            _log.error("limits_refused", chart=runtime.chart_id, version=row.version, reason=str(exc))
+            return False
+        _log.info(
+            "limits_adopted",
+            chart=runtime.chart_id,
+            version=row.version,
+            source=row.source,
+            mean=row.mean,
+            sigma=row.sigma,
+            from_subgroup=runtime.chart_set.next_index,
+        )
+        return True
+
+    async def _refresh_limits(self, store: Store) -> bool:
+        """Read the newest stored limits of the charts in hand; True if any was put in force."""
+        self._limits_checked = time.monotonic()
+        if not self.runtimes:
+            return False
+        try:
+            self._stored_limits = await store.latest_limits_all(list(self.runtimes))
+        except StoreError as exc:
+            _log.warning("limits_check_failed", error=str(exc))
+            return False
+        adopted = [self._sync_limits(runtime) for runtime in self.runtimes.values()]
+        return any(adopted)
 
     # -- processing
 
@@ -980,7 +1065,10 @@ class Daemon:
             now = time.time()
             for runtime in list(self.runtimes.values()):
                 runtime.advance(now, pending.output)
-            if not pending.empty():
+            adopted = False
+            if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
+                adopted = await self._refresh_limits(self.store)
+            if adopted or not pending.empty():
                 await self._commit(pending)
             self._batch_received = None
 
@@ -1081,6 +1169,8 @@ class Daemon:
         try:
             self._checkpoints = await store.load_checkpoints()
             self._positions = await store.chart_positions()
+            self._stored_limits = await store.latest_limits_all()
+            self._limits_checked = time.monotonic()
             link_state = self._checkpoints.pop(_LINK_CHECKPOINT + self.broker.client_id, None)
             forget: list[str] = []
             if link_state is not None:

@@ -47,7 +47,15 @@ from monitor.spc import (
 )
 from monitor.topics import matches
 
-__all__ = ["ChartReplay", "DataError", "ReadingTable", "ReplaySummary", "read_table", "replay"]
+__all__ = [
+    "ChartReplay",
+    "DataError",
+    "ReadingTable",
+    "ReplaySummary",
+    "chart_subgroups",
+    "read_table",
+    "replay",
+]
 
 _MAX_LISTED = 20
 
@@ -348,6 +356,26 @@ def _window_batch(
     return SubgroupBatch.from_subgroups(subgroups)
 
 
+def chart_subgroups(
+    table: ReadingTable, chart: ChartConfig, rows: NDArray[np.int64] | None = None
+) -> tuple[SubgroupBatch, ChartReplay]:
+    """The subgroups the daemon would form for ``chart`` from the table's rows, and a tally.
+
+    ``rows`` are the positions feeding the chart (by default found from its id or topic).
+    """
+    if rows is None:
+        rows = _chart_rows(table, chart)
+    report = ChartReplay(chart=chart.id, readings=int(rows.shape[0]))
+    times, values = table.times[rows], table.values[rows]
+    attribute = chart.spec().attribute is not None
+    exposures = None if table.exposures is None or not attribute else table.exposures[rows]
+    if chart.subgroup.window is not None:
+        batch = _window_batch(chart, times, values, exposures, report)
+    else:
+        batch = _count_batch(chart, times, values, exposures, report)
+    return batch, report
+
+
 # ---------------------------------------------------------------- output
 
 
@@ -572,14 +600,8 @@ def replay(
             progress(chart.id)
         rows = _chart_rows(table, chart)
         routed[rows] = True
-        report = ChartReplay(chart=chart.id, readings=int(rows.shape[0]))
-        times, values = table.times[rows], table.values[rows]
-        attribute = chart.spec().attribute is not None
-        exposures = None if table.exposures is None or not attribute else table.exposures[rows]
-        if chart.subgroup.window is not None:
-            batch = _window_batch(chart, times, values, exposures, report)
-        else:
-            batch = _count_batch(chart, times, values, exposures, report)
+        batch, report = chart_subgroups(table, chart, rows)
+        times = table.times[rows]
         chart_set = ChartSet(chart.spec())
         result = chart_set.update_many(batch)
         report.subgroups = len(batch)

@@ -193,6 +193,22 @@ class ChartSpec:
             "moving_range_span": self.moving_range_span,
         }
 
+    @staticmethod
+    def limit_settings(spec_state: State) -> State:
+        """The part of a spec's :meth:`to_state` that decides the in-control parameters.
+
+        Two specs with equal limit settings get the same parameters from the same data, so
+        parameters can be carried across a change of the other settings (rules, kinds).
+        """
+        kinds = spec_state.get("kinds")
+        kinds_list = kinds if isinstance(kinds, list) else []
+        attribute = next((k for k in kinds_list if k in (ChartKind.P.value, ChartKind.U.value)), None)
+        return {
+            "standard": spec_state.get("standard"),
+            "baseline": spec_state.get("baseline"),
+            "attribute": attribute,
+        }
+
     def build(self, parameters: ProcessParameters, first_index: int) -> tuple[Chart, ...]:
         """One chart object per kind, judged against ``parameters``."""
         return tuple(self._build_one(kind, parameters, first_index) for kind in self.kinds)
@@ -327,6 +343,26 @@ class ChartSet:
         self.charts = self.spec.build(estimate.parameters, self._next)
         self._baseline = []
         return estimate
+
+    def adopt(self, parameters: ProcessParameters, estimate: PhaseOneEstimate | None = None) -> None:
+        """Judge the subgroups from the next one on against new in-control parameters.
+
+        For limits set outside the stream (a baseline made from history, limits kept over a
+        change of other settings). The charts start afresh at the next index: rule windows,
+        EWMA and CUSUM statistics begin again; subgroups collected for a baseline are dropped.
+
+        Examples:
+            >>> spec = ChartSpec(kinds=(ChartKind.XBAR_R,), baseline=BaselinePlan(subgroups=20))
+            >>> charts = ChartSet(spec)
+            >>> charts.adopt(ProcessParameters(10.0, 0.2, source="baseline"))
+            >>> charts.monitoring, [s.rule.value for s in charts.update(Subgroup((11.0, 11.1, 10.9)))]
+            (True, ['beyond_limits'])
+        """
+        charts = self.spec.build(parameters, self._next)  # raises ConfigError for unusable values
+        self.charts = charts
+        self.parameters = parameters
+        self.estimate = estimate
+        self._baseline = []
 
     def update(self, subgroup: Subgroup) -> list[Signal]:
         """Add one subgroup; return the signals of all charts (none during the baseline)."""

@@ -16,7 +16,10 @@ __all__ = ["AlertRow", "CommitBatch", "LimitsRow", "OutboxAlert", "SignalRow", "
 class SubgroupRow:
     """One closed subgroup of a chart and the statistics plotted for it.
 
-    ``points`` maps chart kind and statistic to ``value``, ``center``, ``lower``, ``upper``.
+    ``points`` maps chart kind and statistic to ``value``, ``center``, ``lower``, ``upper``;
+    it is empty for a subgroup collected for a Phase I baseline (not charted). ``values`` are
+    the readings themselves and ``exposures`` their units inspected (attribute charts); both
+    are None on rows written before readings were kept.
     """
 
     chart: str
@@ -25,6 +28,8 @@ class SubgroupRow:
     end_ms: int | None
     n: int
     points: dict[str, object]
+    values: tuple[float, ...] | None = None
+    exposures: tuple[float, ...] | None = None
 
 
 @dataclass(frozen=True)

@@ -4,7 +4,8 @@ Times are epoch milliseconds in BIGINT columns (never ``DateTime``: SQLite would
 time zone). JSON columns use the generic :class:`sqlalchemy.JSON` type, which works on SQLite
 and PostgreSQL alike. Every table that names a chart refers to ``charts``.
 
-The migration ``0001_initial`` creates exactly these tables; a test holds the two together.
+The migrations (``0001_initial``, then ``0002_subgroup_readings``) create exactly these tables;
+a test holds the two together.
 """
 
 from __future__ import annotations
@@ -61,6 +62,7 @@ subgroups = Table(
     Column("end_ms", BigInteger, nullable=True),
     Column("n", Integer, nullable=False),
     Column("points", JSON, nullable=False),
+    Column("readings", JSON, nullable=True),
 )
 
 signals = Table(

@@ -21,7 +21,7 @@ from sqlalchemy import Executable, Row, Table, event, func, select, text, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import URL, make_url
 from sqlalchemy.engine.interfaces import DBAPIConnection
-from sqlalchemy.exc import ArgumentError, SQLAlchemyError
+from sqlalchemy.exc import ArgumentError, IntegrityError, SQLAlchemyError
 from sqlalchemy.ext.asyncio import AsyncConnection, AsyncEngine, create_async_engine
 from sqlalchemy.pool import ConnectionPoolEntry
 
@@ -255,6 +255,63 @@ class Store:
         r = rows[0]
         return LimitsRow(r.chart, r.version, r.mean, r.sigma, r.source, r.detail, r.created_ms)
 
+    async def latest_limits_all(self, charts: Sequence[str] | None = None) -> dict[str, LimitsRow]:
+        """Per chart (all, or those named), its limits of the highest version, in one query."""
+        table = schema.limits
+        newest = (
+            select(table.c.chart, func.max(table.c.version).label("version"))
+            .group_by(table.c.chart)
+            .subquery()
+        )
+        query = select(table).join(
+            newest, (table.c.chart == newest.c.chart) & (table.c.version == newest.c.version)
+        )
+        if charts is not None:
+            query = query.where(table.c.chart.in_(list(charts)))
+        rows = await self._fetch("reading limits", query)
+        return {
+            r.chart: LimitsRow(r.chart, r.version, r.mean, r.sigma, r.source, r.detail, r.created_ms)
+            for r in rows
+        }
+
+    async def limits_history(self, chart: str) -> list[LimitsRow]:
+        """Every limits version of the chart, oldest first."""
+        table = schema.limits
+        query = select(table).where(table.c.chart == chart).order_by(table.c.version)
+        rows = await self._fetch("reading limits", query)
+        return [
+            LimitsRow(r.chart, r.version, r.mean, r.sigma, r.source, r.detail, r.created_ms) for r in rows
+        ]
+
+    async def add_limits(
+        self, chart: str, *, mean: float, sigma: float | None, source: str, detail: dict[str, object]
+    ) -> LimitsRow:
+        """Store a new limits version of the chart (one above the highest stored) and return it.
+
+        The version is chosen and written in one transaction; if another writer took the same
+        number meanwhile, the next one is tried.
+        """
+        table = schema.limits
+        for _ in range(5):
+            created = _now_ms()
+            try:
+                with self._reported("writing limits"):
+                    async with self._engine.begin() as conn:
+                        await self._insert_new(
+                            conn, schema.charts, ("chart",), [{"chart": chart, "first_seen_ms": created}]
+                        )
+                        highest = await conn.scalar(
+                            select(func.max(table.c.version)).where(table.c.chart == chart)
+                        )
+                        row = LimitsRow(chart, int(highest or 0) + 1, mean, sigma, source, detail, created)
+                        await conn.execute(table.insert(), [_limits_values(row)])
+            except StoreError as exc:
+                if not isinstance(exc.__cause__, IntegrityError):
+                    raise
+            else:
+                return row
+        raise StoreError(f"writing limits for {chart}: the version kept being taken by another writer")
+
     async def subgroup_count(self, chart: str) -> int:
         """How many subgroups of the chart are stored."""
         table = schema.subgroups
@@ -306,18 +363,27 @@ class Store:
         ]
 
     async def subgroups_for(
-        self, chart: str, *, since_index: int = 0, limit: int | None = None
+        self,
+        chart: str,
+        *,
+        since_index: int = 0,
+        limit: int | None = None,
+        since_ms: int | None = None,
+        until_ms: int | None = None,
     ) -> list[SubgroupRow]:
-        """The chart's subgroups from index ``since_index`` on, in index order, at most ``limit``."""
+        """The chart's subgroups from index ``since_index`` on, in index order, at most ``limit``.
+
+        ``since_ms`` and ``until_ms`` keep those whose end time lies in ``[since_ms, until_ms)``.
+        """
         table = schema.subgroups
-        query = (
-            select(table)
-            .where(table.c.chart == chart, table.c.idx >= since_index)
-            .order_by(table.c.idx)
-            .limit(limit)
-        )
+        conditions = [table.c.chart == chart, table.c.idx >= since_index]
+        if since_ms is not None:
+            conditions.append(table.c.end_ms >= since_ms)
+        if until_ms is not None:
+            conditions.append(table.c.end_ms < until_ms)
+        query = select(table).where(*conditions).order_by(table.c.idx).limit(limit)
         rows = await self._fetch("reading subgroups", query)
-        return [SubgroupRow(r.chart, r.idx, r.start_ms, r.end_ms, r.n, r.points) for r in rows]
+        return [_subgroup_row(r) for r in rows]
 
     # ------------------------------------------------------------------ helpers
 
@@ -369,6 +435,21 @@ class Store:
             raise StoreError(f"{what} failed on {shown}: {detail}") from exc
 
 
+def _subgroup_row(r: Row[Any]) -> SubgroupRow:
+    readings = r.readings if isinstance(r.readings, dict) else {}
+    values, exposures = readings.get("values"), readings.get("exposures")
+    return SubgroupRow(
+        r.chart,
+        r.idx,
+        r.start_ms,
+        r.end_ms,
+        r.n,
+        r.points,
+        None if values is None else tuple(float(v) for v in values),
+        None if exposures is None else tuple(float(v) for v in exposures),
+    )
+
+
 def _subgroup_values(row: SubgroupRow) -> dict[str, object]:
     return {
         "chart": row.chart,
@@ -377,6 +458,12 @@ def _subgroup_values(row: SubgroupRow) -> dict[str, object]:
         "end_ms": row.end_ms,
         "n": row.n,
         "points": row.points,
+        "readings": None
+        if row.values is None
+        else {
+            "values": list(row.values),
+            "exposures": None if row.exposures is None else list(row.exposures),
+        },
     }
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import math
 import re
+import signal
 import subprocess
 import sys
 import textwrap
@@ -305,14 +306,18 @@ def test_a_baseline_is_estimated_stored_as_limits_version_one_and_then_charted(p
     values = [10.0 + 0.1 * ((k * 7) % 5 - 2) for k in range(28)]
     daemon = plant.daemon().start()
     publish(plant.topic("cell/width"), [f"{v:.3f}" for v in values])
-    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 2)
+    assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 7)
     daemon.stop()
     limits = sqlite_rows(plant.db, "select version, mean, source from limits where chart = 'cell/width'")
     assert len(limits) == 1
     version, mean, source = limits[0]
     assert (version, source) == (1, "baseline")
     assert mean == pytest.approx(sum(values[:20]) / 20)
-    assert [r[0] for r in sqlite_rows(plant.db, "select idx from subgroups order by idx")] == [5, 6]
+    stored = sqlite_rows(plant.db, "select idx, points, readings from subgroups order by idx")
+    # the baseline subgroups are kept with their readings but have no plotted points
+    assert [idx for idx, points, _ in stored if json.loads(points)] == [5, 6]
+    kept = [json.loads(readings)["values"] for _, _, readings in stored]
+    assert [v for group in kept for v in group] == pytest.approx([round(v, 3) for v in values])
 
 
 def test_a_wildcard_level_expands_into_one_chart_per_machine(plant):
@@ -807,8 +812,97 @@ def test_changed_settings_continue_from_the_checkpoint_without_losing_waiting_re
     expected = [sum(values[a:b]) / (b - a) for a, b in ((0, 5), (5, 10), (10, 15), (15, 18), (18, 21))]
     assert means == pytest.approx(expected, abs=1e-12)
     notes = [str(e["reason"]) for e in daemon.events() if e.get("event") == "checkpoint_partly_restored"]
-    assert any("chart settings changed" in n and "subgroup 2" in n for n in notes)
+    assert any("chart settings changed" in n and "subgroup 2" in n and "limits kept" in n for n in notes)
     limits = sqlite_rows(
         plant.db, "select version from limits where chart = 'press/thickness' order by version"
     )
-    assert [r[0] for r in limits] == [1, 2]  # new rules made a new limits version
+    assert [r[0] for r in limits] == [1]  # new rules and sizes, same standard values: same limits
+
+
+def test_a_new_limits_version_from_monitor_baseline_is_put_in_force_without_restart(plant, tmp_path):
+    """`monitor baseline --save` stores version 2; the running daemon charts the next subgroup against it."""
+    plant.write(PRESS, extra="storage: {limits_poll: 0.5}\n")
+    daemon = plant.daemon().start()
+    try:
+        publish(plant.topic("press/thickness"), readings([8.0, 8.01, 7.99, 8.02, 7.98] * 2))
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 2)
+        # the process now runs near 8.5: a baseline from a file of its readings (invented values)
+        history = tmp_path / "new-level.csv"
+        level = [8.5 + 0.04 * ((k * 7) % 9 - 4) / 4 for k in range(100)]
+        history.write_text(
+            "chart,timestamp,value\n"
+            + "".join(f"press/thickness,{1_767_000_000 + k},{v:.4f}\n" for k, v in enumerate(level))
+        )
+        made = subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "monitor",
+                "baseline",
+                "--config",
+                str(plant.config),
+                "--chart",
+                "press/thickness",
+                "--data",
+                str(history),
+                "--save",
+                "--json",
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            check=False,
+        )
+        assert made.returncode == 0, made.stderr
+        result = json.loads(made.stdout)
+        assert result["saved_version"] == 2
+        daemon.wait_log("limits_adopted", 15)
+        publish(
+            plant.topic("press/thickness"),
+            readings([8.5, 8.51, 8.49, 8.52, 8.48], start_seq=11, start_s=1_767_600_010.0),
+        )
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 3)
+    finally:
+        daemon.stop()
+    adopted = [e for e in daemon.events() if e.get("event") == "limits_adopted"]
+    assert adopted[0]["version"] == 2
+    assert adopted[0]["source"] == "baseline"
+    (points,) = sqlite_rows(plant.db, "select points from subgroups where idx = 2")[0]
+    mean_point = json.loads(points)["xbar_r"]["mean"]
+    assert mean_point["center"] == pytest.approx(result["mean"])
+    assert mean_point["upper"] == pytest.approx(result["mean"] + 3 * result["sigma"] / 5**0.5)
+    # 8.5 is 28 sigma of the mean above the old center: under the new limits nothing signals
+    assert sqlite_rows(plant.db, "select count(*) from signals where subgroup = 2") == [(0,)]
+    versions = sqlite_rows(plant.db, "select version, source from limits order by version")
+    assert versions == [(1, "standard"), (2, "baseline")]
+
+
+def test_changing_only_the_rules_keeps_the_estimated_limits(plant):
+    """A reload that changes the rules keeps the Phase I limits: no new baseline is collected."""
+    chart = """\
+        - id: cell/width
+          topic: "{{root}}/cell/width"
+          subgroup: {{{{size: 4}}}}
+          kinds: [xbar_s]
+          limits: {{{{baseline: {{{{subgroups: 5}}}}}}}}
+          rules: {rules}
+        """
+    plant.write(chart.format(rules="none"))
+    values = [10.0 + 0.1 * ((k * 7) % 5 - 2) for k in range(24)]
+    daemon = plant.daemon().start()
+    try:
+        publish(plant.topic("cell/width"), [f"{v:.3f}" for v in values])
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 6)
+        plant.write(chart.format(rules="western-electric"))
+        assert daemon.process is not None
+        daemon.process.send_signal(signal.SIGHUP)
+        daemon.wait_log("config_reloaded", 10)
+        publish(plant.topic("cell/width"), [f"{v:.3f}" for v in values[:4]])
+        assert wait_until(lambda: len(sqlite_rows(plant.db, "select idx from subgroups")) == 7)
+    finally:
+        daemon.stop()
+    notes = [str(e["reason"]) for e in daemon.events() if e.get("event") == "chart_reconfigured"]
+    assert any("limits kept" in note for note in notes), notes
+    assert sqlite_rows(plant.db, "select version from limits") == [(1,)]
+    (points,) = sqlite_rows(plant.db, "select points from subgroups where idx = 6")[0]
+    assert json.loads(points)["xbar_s"]["mean"]["center"] == pytest.approx(sum(values[:20]) / 20)

@@ -32,12 +32,12 @@ def _inspect_tables(database: Database) -> tuple[set[str], str | None, list[obje
 
 
 async def test_opening_an_empty_database_creates_every_table(database):
-    """Store.open on an empty database creates the seven tables and records revision 0001_initial."""
+    """Store.open on an empty database creates the seven tables and records the latest revision."""
     store = await Store.open(database.url)
     await store.close()
     names, revision, _ = _inspect_tables(database)
     assert names == TABLES | {"alembic_version"}
-    assert revision == "0001_initial"
+    assert revision == "0002_subgroup_readings"
 
 
 async def test_the_migration_builds_exactly_the_tables_the_store_uses(database):
@@ -57,7 +57,7 @@ async def test_opening_a_database_twice_keeps_its_data(database):
         assert await store.ping() >= 0.0
     names, revision, _ = _inspect_tables(database)
     assert names == TABLES | {"alembic_version"}
-    assert revision == "0001_initial"
+    assert revision == "0002_subgroup_readings"
 
 
 async def test_opening_without_migrating_leaves_an_empty_database_empty(database):
