@@ -10,7 +10,9 @@ The file is CSV or Parquet with one reading per row and the columns
 
 Rows are taken in file order per chart. Readings form subgroups exactly as in the daemon
 (count, or clock-aligned windows with the configured lateness); each chart set then runs its
-vectorised batch path. The output is one JSON line per plotted point, signal or baseline.
+vectorised batch path. The output is one JSON line per plotted point, signal or baseline,
+and a ``summary`` line per chart (signals per rule, false alarms observed against expected,
+labelled changes and their detection).
 Rows that cannot be used are reported with their line numbers and skipped; nothing else is
 dropped silently (incomplete subgroups at the end are reported as pending).
 """
@@ -262,6 +264,46 @@ class ChartReplay:
     in_control_subgroups: int = 0
     rates: list[RuleRate] = field(default_factory=list)
     changes: list[ChangeDetection] = field(default_factory=list)
+
+    def to_json(self) -> dict[str, object]:
+        """The summary as a ``"type": "summary"`` JSON line (stable keys, for scripts)."""
+        return {
+            "type": "summary",
+            "chart": self.chart,
+            "readings": self.readings,
+            "subgroups": self.subgroups,
+            "pending_readings": self.pending,
+            "late_readings": self.late,
+            "short_windows": self.short_windows,
+            "charted_from": self.monitoring_from,
+            "signals": [
+                {"kind": kind, "statistic": statistic, "rule": rule, "count": count}
+                for (kind, statistic, rule), count in sorted(self.signals.items())
+            ],
+            "labelled": self.labelled,
+            "in_control_subgroups": self.in_control_subgroups,
+            "false_alarms": [
+                {
+                    "kind": r.kind,
+                    "statistic": r.statistic,
+                    "rule": r.rule,
+                    "observed": r.observed,
+                    "expected": r.expected,
+                }
+                for r in self.rates
+            ],
+            "changes": [
+                {
+                    "label": c.label,
+                    "subgroup": c.subgroup,
+                    "first_signal": c.first_signal,
+                    "rule": c.rule,
+                    "delay_subgroups": c.delay_subgroups,
+                    "delay_seconds": c.delay_seconds,
+                }
+                for c in self.changes
+            ],
+        }
 
 
 IN_CONTROL_LABELS = frozenset({"", "in control", "in-control", "in_control", "normal", "ok", "baseline"})
@@ -617,6 +659,8 @@ def replay(
             for line in _lines(chart.id, batch, result, 0, points):
                 out.write(orjson.dumps(line))
                 out.write(b"\n")
+            out.write(orjson.dumps(report.to_json()))
+            out.write(b"\n")
         reports.append(report)
     return ReplaySummary(
         charts=reports,

@@ -96,3 +96,33 @@ def test_check_prints_in_control_arls_and_warns_about_a_trigger_happy_chart(tmp_
     assert "false alarms expected" in text
     assert "WARNING" in text
     assert "not a safety system" in text
+
+
+def _leaf_parsers() -> dict[str, object]:
+    """Every command and sub-command of `monitor`, by its words."""
+    import argparse  # noqa: PLC0415
+
+    from monitor.cli import build_parser  # noqa: PLC0415
+
+    found: dict[str, object] = {}
+
+    def walk(parser: argparse.ArgumentParser, words: tuple[str, ...]) -> None:
+        actions = [a for a in parser._actions if isinstance(a, argparse._SubParsersAction)]
+        if not actions:
+            found[" ".join(words)] = parser
+        for action in actions:
+            for name, child in action.choices.items():
+                walk(child, (*words, name))
+
+    walk(build_parser(), ())
+    return found
+
+
+def test_every_command_has_help_with_a_runnable_looking_example():
+    """Each leaf command's --help has an examples section that starts with `monitor <its words>`."""
+    leaves = _leaf_parsers()
+    assert {"check", "replay", "run", "baseline", "report", "design arl"} <= set(leaves)
+    for words, parser in leaves.items():
+        text = parser.format_help()  # type: ignore[attr-defined]
+        assert "example" in text, words
+        assert f"monitor {words} " in text, words

@@ -345,6 +345,12 @@ def test_replay_summary_prints_rates_and_changes(tmp_path):
     write_labelled(data, values, ["in control"] * 500 + ["burner fluttering"] * 20)
     result = run_cli("replay", "--config", str(config), "--data", str(data), "--signals-only", "--quiet")
     assert result.returncode == 0, result.stderr
+    (summary,) = [line for line in map(json.loads, result.stdout.splitlines()) if line["type"] == "summary"]
+    assert summary["in_control_subgroups"] == 500
+    assert summary["changes"][0]["label"] == "burner fluttering"
+    assert summary["changes"][0]["first_signal"] == 500
+    rates = {(r["statistic"], r["rule"]): r for r in summary["false_alarms"]}
+    assert rates[("individual", "beyond_limits")]["expected"] == pytest.approx(500 * 0.0026998, rel=1e-4)
     assert "false alarms over 500 subgroups (labelled in control)" in result.stderr
     assert "beyond_limits on individual:" in result.stderr
     assert "change 'burner fluttering' at subgroup 500: first signal at subgroup 500" in result.stderr
