@@ -801,7 +801,7 @@ class Daemon:
         if not self.runtimes:
             return False
         try:
-            self._stored_limits = await store.latest_limits_all(list(self.runtimes))
+            self._stored_limits = await store.latest_limits_all()
         except StoreError as exc:
             _log.warning("limits_check_failed", error=str(exc))
             return False
