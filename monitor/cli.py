@@ -110,12 +110,13 @@ def cmd_check(args: argparse.Namespace) -> int:
         print(f"  kinds:     {', '.join(item['kinds'] or [])}")
         print(f"  limits:    {item['limits']}")
         print(f"  rules:     {', '.join(item['rules'] or [])}")
+        print(f"  parent:    {budget.parent}")
         for panel in budget.panels:
             print(f"  in-control ARL, {panel.panel}: {panel.arl:.4g} subgroups ({panel.method})")
         if budget.false_alarms_per_day is not None and budget.false_alarms_per_shift is not None:
             day, shift = budget.false_alarms_per_day, budget.false_alarms_per_shift
             print(
-                "  false alarms expected (normal process, panels combined, about): "
+                f"  false alarms expected ({budget.parent.split(' (')[0]} process, panels combined, about): "
                 f"{day:.3g} a day, {shift:.3g} an 8-hour shift"
             )
         if budget.note:
@@ -295,8 +296,10 @@ def _add_baseline(commands: argparse._SubParsersAction[argparse.ArgumentParser])
         description=(
             "Estimate a chart's in-control mean and sigma from a stretch of good history: "
             "subgroups formed from a CSV or Parquet file as the daemon forms them, or the "
-            "subgroups stored by the daemon. Reports excluded subgroups, normality and the "
-            "fitted parent model; --save stores the limits as a new version, which a running "
+            "subgroups stored by the daemon. Reports excluded subgroups, normality, the "
+            "fitted parent model, and the true false-alarm rate of normal-theory limits for the "
+            "mean under that parent at the chart's subgroup size and at other sizes, with a "
+            "suggested size; --save stores the limits as a new version, which a running "
             "daemon puts in force within storage.limits_poll seconds."
         ),
         epilog=(
@@ -333,6 +336,26 @@ def _add_baseline(commands: argparse._SubParsersAction[argparse.ArgumentParser])
 # ---------------------------------------------------------------- design
 
 
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {value}")
+    return value
+
+
+def _probability(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
+    if not 0.0 < value < 0.5:
+        raise argparse.ArgumentTypeError(f"must be a probability in (0, 0.5), got {value}")
+    return value
+
+
 def _print_result(args: argparse.Namespace, result: dict[str, object], lines: list[str]) -> int:
     if args.json:
         print(json.dumps(result, indent=2))
@@ -342,25 +365,35 @@ def _print_result(args: argparse.Namespace, result: dict[str, object], lines: li
 
 
 def cmd_design_arl(args: argparse.Namespace) -> int:
-    """The average run length of one chart design at a shift."""
+    """The average run length of one chart design at a shift (normal or a parent's law)."""
     from monitor.spc import rule_preset  # noqa: PLC0415
-    from monitor.spc.arl import cusum_arl, ewma_arl, shewhart_arl  # noqa: PLC0415
+    from monitor.spc.arl import ZCdf, cusum_arl, ewma_arl, normal_cdf, shewhart_arl  # noqa: PLC0415
 
+    cdf: ZCdf = normal_cdf
+    parent = "normal"
+    if args.parent is not None:
+        from monitor.spc.laws import standardized_mean_cdf  # noqa: PLC0415 - the laws load only when asked
+        from monitor.spc.parents import parse_parent  # noqa: PLC0415
+
+        model = parse_parent(args.parent)
+        cdf = standardized_mean_cdf(model, args.n)
+        parent = model.describe()
     if args.chart == "cusum":
-        run = cusum_arl(args.k, args.h, shift=args.shift, head_start=args.head_start)
+        run = cusum_arl(args.k, args.h, shift=args.shift, head_start=args.head_start, cdf=cdf)
         params: dict[str, object] = {"k": args.k, "h": args.h, "head_start": args.head_start}
     elif args.chart == "ewma":
         run = ewma_arl(
             args.smoothing,
             args.width,
             shift=args.shift,
+            cdf=cdf,
             fast_initial_response=args.fast_initial_response,
             time_varying_limits=args.time_varying_limits,
         )
         params = {"lambda": args.smoothing, "width": args.width}
     else:
         rules = rule_preset(args.rules)
-        run = shewhart_arl(rules, limit_sigma=args.limit_sigma, shift=args.shift)
+        run = shewhart_arl(rules, limit_sigma=args.limit_sigma, shift=args.shift, cdf=cdf)
         params = {"rules": [r.id.value for r in rules], "limit_sigma": args.limit_sigma}
     result: dict[str, object] = {
         "chart": args.chart,
@@ -370,10 +403,57 @@ def cmd_design_arl(args: argparse.Namespace) -> int:
         "sd": run.sd,
         "method": run.method,
         "error": run.error,
-        "parent": "normal",
+        "parent": parent,
+        "n": args.n,
     }
     line = f"{args.chart} ARL at a shift of {args.shift:g} sigma: {run.arl:.4g} subgroups ({run.method})"
+    if args.parent is not None:
+        line += f"; readings {parent}, subgroups of {args.n}"
     return _print_result(args, result, [line])
+
+
+def cmd_design_tail(args: argparse.Namespace) -> int:
+    """P(mean of n >= at) under a parent model, beside the normal approximation."""
+    from monitor.design import tail_report  # noqa: PLC0415
+
+    result = tail_report(args.parent, args.n, args.at)
+    upper = (
+        f"  P(mean >= {args.at:g}) = {result['p_value']:.6g} ({result['method']}; "
+        f"normal approximation {result['normal_approx']:.6g})"
+    )
+    lower = (
+        f"  P(mean <= {args.at:g}) = {result['lower_tail']:.6g} "
+        f"(normal approximation {result['normal_lower_tail']:.6g})"
+    )
+    lines = [f"{result['parent']}, mean of {args.n} readings:", upper, lower]
+    return _print_result(args, result, lines)
+
+
+def cmd_design_limits(args: argparse.Namespace) -> int:
+    """True false-alarm rate of normal-theory limits under a parent, and probability limits."""
+    from monitor.design import limits_report  # noqa: PLC0415
+
+    upper = args.upper_tail if args.upper_tail is not None else args.tail
+    lower = args.lower_tail if args.lower_tail is not None else args.tail
+    result = limits_report(
+        args.parent, args.n, limit_sigma=args.limit_sigma, lower_tail=lower, upper_tail=upper
+    )
+    normal = result["normal_limits"]
+    exact = result["probability_limits"]
+    if not isinstance(normal, dict) or not isinstance(exact, dict):  # pragma: no cover - for the type checker
+        raise TypeError("limits_report returned an unexpected shape")
+    rates = (
+        f"  {args.limit_sigma:g}-sigma limits {normal['lower']:.6g} to {normal['upper']:.6g}: false alarms "
+        f"{result['false_alarm_below']:.4g} below and {result['false_alarm_above']:.4g} above per subgroup "
+        f"(normal theory: {result['nominal_each_side']:.4g} each); in-control ARL "
+        f"{result['arl_normal_limits']:.4g} instead of {result['arl_nominal']:.4g}"
+    )
+    fixed = (
+        f"  probability limits {exact['lower']:.6g} to {exact['upper']:.6g} give "
+        f"{lower:g} below and {upper:g} above"
+    )
+    lines = [f"{result['parent']}, means of {args.n} readings ({result['method']}):", rates, fixed]
+    return _print_result(args, result, lines)
 
 
 def cmd_design_recommend(args: argparse.Namespace) -> int:
@@ -435,8 +515,68 @@ def _add_design(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -
     arl.add_argument("--k", type=float, default=0.5, help="cusum: reference value")
     arl.add_argument("--h", type=float, default=5.0, help="cusum: decision interval")
     arl.add_argument("--head-start", type=float, default=0.0, help="cusum: starting value of both sums")
+    arl.add_argument(
+        "--parent",
+        help="in-control model of single readings, NAME:key=value,... (default: the plotted point is normal)",
+    )
+    arl.add_argument(
+        "--n", type=_positive_int, default=1, help="with --parent: readings per subgroup (default 1)"
+    )
     arl.add_argument("--json", action="store_true")
     arl.set_defaults(run=cmd_design_arl)
+    tail = tools.add_parser(
+        "tail",
+        help="probability that the mean of n readings reaches a value, under a parent model",
+        description=(
+            "P(mean of n readings >= AT) from the exact law of the mean under the parent model "
+            "(closed form or convolution), beside the normal approximation. Parents are written "
+            "NAME:key=value,... : normal (mean, sd), lognormal (log_mean, log_sd), gamma (shape, "
+            "scale), exponential (mean), weibull (shape, scale), uniform (low, high), triangular "
+            "(low, mode, high)."
+        ),
+        epilog=(
+            "examples:\n"
+            "  monitor design tail --parent triangular:low=0,mode=16,high=32 --n 25 --at 18 --json\n"
+            "  monitor design tail --parent lognormal:log_mean=2.7,log_sd=0.25 --n 5 --at 20"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    tail.add_argument(
+        "--parent", required=True, help="in-control model of single readings, NAME:key=value,..."
+    )
+    tail.add_argument("--n", type=_positive_int, required=True, help="readings per subgroup")
+    tail.add_argument("--at", type=float, required=True, help="the value of the mean")
+    tail.add_argument("--json", action="store_true")
+    tail.set_defaults(run=cmd_design_tail)
+    limits = tools.add_parser(
+        "limits",
+        help="true false-alarm rate of normal-theory limits under a parent, and probability limits",
+        description=(
+            "For means of n readings from the parent model: how often normal-theory limits "
+            "(mean +/- L sigma / sqrt n) are crossed in control on each side, and the exact "
+            "quantiles of the mean (probability limits) that give the wanted tails instead."
+        ),
+        epilog=(
+            "examples:\n"
+            "  monitor design limits --parent exponential:mean=1 --n 4 --json\n"
+            "  monitor design limits --parent weibull:shape=1.5,scale=10 --n 5 --tail 0.001"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    limits.add_argument(
+        "--parent", required=True, help="in-control model of single readings, NAME:key=value,..."
+    )
+    limits.add_argument("--n", type=_positive_int, required=True, help="readings per subgroup")
+    limits.add_argument(
+        "--limit-sigma", type=float, default=3.0, help="normal-theory limits at this many sigma"
+    )
+    limits.add_argument(
+        "--tail", type=_probability, default=0.00135, help="wanted tail on each side (default 0.00135)"
+    )
+    limits.add_argument("--lower-tail", type=_probability, help="wanted lower tail (default --tail)")
+    limits.add_argument("--upper-tail", type=_probability, help="wanted upper tail (default --tail)")
+    limits.add_argument("--json", action="store_true")
+    limits.set_defaults(run=cmd_design_limits)
     recommend = tools.add_parser(
         "recommend",
         help="EWMA or CUSUM parameters for a wanted in-control ARL and a shift to detect",

@@ -4,8 +4,10 @@ A quality engineer decides what the crews will be woken for. For each configured
 module works out the in-control average run length (ARL) of every panel under its rules, the
 false alarms to expect per day and per shift at the chart's sampling rate, and whether that
 passes the configured budget. The ARLs come from :mod:`monitor.spc.arl` (Markov chains and
-closed forms) under a normal process; the panels of one chart look at the same data, so the
-combined rate (the sum of the panels' rates) is an approximation, said so where printed.
+closed forms) under the chart's parent model (normal by default; a fixed parent through the
+exact law of the subgroup mean; spread panels under normal readings); the panels of one
+chart look at the same data, so the combined rate (the sum of the panels' rates) is an
+approximation, said so where printed.
 """
 
 from __future__ import annotations
@@ -13,15 +15,19 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numpy as np
+from numpy.typing import NDArray
 from scipy import special
 
 from monitor.config import ChartConfig
 from monitor.spc import ChartKind
-from monitor.spc.arl import RunLength, cusum_arl, ewma_arl, shewhart_arl
+from monitor.spc.arl import RunLength, ZCdf, cusum_arl, ewma_arl, normal_cdf, shewhart_arl
 from monitor.spc.charts._math import range_limits, sd_limits
 from monitor.spc.constants import range_cdf
 
 __all__ = ["ChartBudget", "PanelRunLength", "chart_budget", "spread_rate"]
+
+FloatArray = NDArray[np.float64]
 
 SECONDS_PER_DAY = 86_400.0
 SHIFT_HOURS = 8.0
@@ -48,11 +54,14 @@ class ChartBudget:
     false_alarms_per_shift: float | None = None
     warning: str | None = None
     note: str | None = None
+    parent: str = "normal"
+    """The in-control model the ARLs were computed under."""
 
     def to_json(self) -> dict[str, object]:
         """As plain data for ``--json``."""
         return {
             "chart": self.chart,
+            "parent": self.parent,
             "panels": [{"panel": p.panel, "arl": p.arl, "method": p.method} for p in self.panels],
             "combined_arl": self.combined_arl,
             "subgroups_per_day": self.subgroups_per_day,
@@ -61,6 +70,35 @@ class ChartBudget:
             "warning": self.warning,
             "note": self.note,
         }
+
+
+def _point_law(chart: ChartConfig, n: int) -> tuple[ZCdf, str]:
+    """The law of the standardized subgroup mean the chart will see, and the model's name.
+
+    A fixed parent gives the exact law of the mean of ``n`` readings, standardized by the
+    chart's standard values (or the parent's own mean and sd when the limits come from a
+    baseline). A parent fitted at run time is not known yet: normal, said so.
+    """
+    if chart.parent.strip().lower() == "normal" or chart.kinds[0] in (ChartKind.P, ChartKind.U):
+        return normal_cdf, "normal"
+    choice = chart.parent_choice()
+    if choice.parent is None:
+        return normal_cdf, f"normal ({chart.parent} is fitted to the baseline at run time)"
+    from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - only for charts with a parent
+
+    parent = choice.parent
+    law = law_of_mean(parent, n)
+    limits = chart.limits
+    mean = parent.mean() if limits.mean is None else limits.mean
+    sigma = parent.sd() if limits.sigma is None else limits.sigma
+    spread = sigma / math.sqrt(n)
+
+    def cdf(z: FloatArray) -> FloatArray:
+        return law.cdf(mean + np.asarray(z, dtype=np.float64) * spread)
+
+    return cdf, parent.describe() + (
+        " (probability limits on the mean panel)" if chart.probability_limits else ""
+    )
 
 
 def spread_rate(chart: ChartConfig, n: int) -> float:
@@ -104,6 +142,7 @@ def chart_budget(chart: ChartConfig, *, budget_per_day: float | None = None) -> 
     budget = ChartBudget(chart=chart.id)
     kinds = set(chart.kinds)
     size = chart.subgroup.size or chart.subgroup.min_size
+    cdf, budget.parent = _point_law(chart, size)
     if kinds & {ChartKind.P, ChartKind.U}:
         budget.note = "p and u charts: the run length depends on the units inspected per subgroup"
     else:
@@ -112,7 +151,9 @@ def chart_budget(chart: ChartConfig, *, budget_per_day: float | None = None) -> 
         )
         if location is not None:
             rules = chart.rule_objects()
-            result: RunLength = shewhart_arl(rules, limit_sigma=chart.limit_sigma)
+            result: RunLength = shewhart_arl(
+                rules, limit_sigma=chart.limit_sigma, cdf=normal_cdf if chart.probability_limits else cdf
+            )
             name = "individual" if location is ChartKind.INDIVIDUALS else "mean"
             detail = ", ".join(r.id.value for r in rules)
             budget.panels.append(PanelRunLength(f"{name} ({detail})", result.arl, result.method))
@@ -121,12 +162,16 @@ def chart_budget(chart: ChartConfig, *, budget_per_day: float | None = None) -> 
         if ChartKind.EWMA in kinds:
             e = chart.ewma
             result = ewma_arl(
-                e.smoothing, e.width, time_varying_limits=True, fast_initial_response=e.fast_initial_response
+                e.smoothing,
+                e.width,
+                time_varying_limits=True,
+                fast_initial_response=e.fast_initial_response,
+                cdf=cdf,
             )
             budget.panels.append(PanelRunLength("ewma", result.arl, result.method))
         if ChartKind.CUSUM in kinds:
             c = chart.cusum
-            result = cusum_arl(c.k, c.h, head_start=c.head_start)
+            result = cusum_arl(c.k, c.h, head_start=c.head_start, cdf=cdf)
             budget.panels.append(PanelRunLength("cusum", result.arl, result.method))
         rate = sum(1.0 / p.arl for p in budget.panels)
         budget.combined_arl = 1.0 / rate if rate > 0 else math.inf
@@ -145,3 +190,92 @@ def chart_budget(chart: ChartConfig, *, budget_per_day: float | None = None) -> 
     elif budget.combined_arl and budget.note is None:
         budget.note = "set readings_every (or use a time window) to get false alarms per day"
     return budget
+
+
+# ---------------------------------------------------------------- tails and probability limits
+
+
+def tail_report(parent_text: str, n: int, at: float) -> dict[str, object]:
+    """P(mean of n >= at) under a parent, the lower tail, and what normal theory would say.
+
+    Examples:
+        >>> out = tail_report("triangular:low=0,mode=16,high=32", 25, 18.0)
+        >>> round(out["p_value"], 4), round(out["normal_approx"], 4), out["method"]
+        (0.063, 0.0629, 'closed form')
+    """
+    from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - the laws load only when asked
+    from monitor.spc.parents import parse_parent  # noqa: PLC0415
+
+    parent = parse_parent(parent_text)
+    law = law_of_mean(parent, n)
+    spread = parent.sd() / math.sqrt(n)
+    z = (at - parent.mean()) / spread
+    return {
+        "parent": parent.describe(),
+        "n": n,
+        "at": at,
+        "p_value": law.tail(at, upper=True),
+        "lower_tail": law.tail(at, upper=False),
+        "normal_approx": float(special.ndtr(-z)),
+        "normal_lower_tail": float(special.ndtr(z)),
+        "z": z,
+        "method": law.method,
+        "error_bound": law.error_bound,
+        "tail_floor": getattr(law, "tail_floor", 0.0),
+        "detail": law.detail,
+        "mean": parent.mean(),
+        "sd_of_mean": spread,
+    }
+
+
+def limits_report(
+    parent_text: str,
+    n: int,
+    *,
+    limit_sigma: float = 3.0,
+    lower_tail: float = 0.00135,
+    upper_tail: float = 0.00135,
+) -> dict[str, object]:
+    """The true false-alarm rate of normal-theory limits for the mean under a parent.
+
+    With it, the probability limits (exact quantiles of the mean) that give the wanted tails.
+
+    Examples:
+        >>> out = limits_report("exponential:mean=1", 4)
+        >>> round(out["false_alarm_above"], 5), out["false_alarm_below"]
+        (0.01034, 0.0)
+        >>> round(out["probability_limits"]["upper"], 3)  # gamma(4, 1/4) upper 0.00135 point
+        3.17
+    """
+    from monitor.spc.laws import law_of_mean, probability_limits, true_false_alarm_rate  # noqa: PLC0415
+    from monitor.spc.parents import parse_parent  # noqa: PLC0415
+
+    parent = parse_parent(parent_text)
+    law = law_of_mean(parent, n)
+    below, above = true_false_alarm_rate(parent, n, limit_sigma=limit_sigma)
+    half = limit_sigma * parent.sd() / math.sqrt(n)
+    nominal = float(special.ndtr(-limit_sigma))
+    low, high = probability_limits(law, lower_tail=lower_tail, upper_tail=upper_tail)
+    total = below + above
+    return {
+        "parent": parent.describe(),
+        "n": n,
+        "limit_sigma": limit_sigma,
+        "normal_limits": {"lower": parent.mean() - half, "upper": parent.mean() + half},
+        "false_alarm_below": below,
+        "false_alarm_above": above,
+        "false_alarm_rate": total,
+        "nominal_each_side": nominal,
+        "ratio_to_nominal": total / (2.0 * nominal),
+        "arl_normal_limits": 1.0 / total if total > 0 else math.inf,
+        "arl_nominal": 1.0 / (2.0 * nominal),
+        "probability_limits": {
+            "lower": low,
+            "upper": high,
+            "lower_tail": lower_tail,
+            "upper_tail": upper_tail,
+        },
+        "method": law.method,
+        "error_bound": law.error_bound,
+        "detail": law.detail,
+    }

@@ -93,12 +93,14 @@ from monitor.spc.signals import RuleId
 
 __all__ = [
     "DEFAULT_SMOOTHINGS",
+    "CusumTailCurve",
     "Design",
     "RunLength",
     "ZCdf",
     "cusum_arl",
     "cusum_decision_interval",
     "cusum_tail",
+    "cusum_tail_curve",
     "ewma_arl",
     "ewma_tail",
     "ewma_width",
@@ -1400,3 +1402,100 @@ def ewma_tail(
         reach *= 2.0
     fine, _ = tail(cells, reach)
     return float(min(1.0, max(0.0, fine + (fine - coarse) / 3.0)))
+
+
+@dataclass(frozen=True, slots=True)
+class CusumTailCurve:
+    """The stationary upper tail ``P(C > x)`` of one CUSUM sum, tabulated once, read in microseconds.
+
+    Attributes:
+        xs: grid of sums (sigma of the plotted point), from 0 up to the reach.
+        log_tails: natural log of the tail at each grid point.
+        precision: largest relative Richardson correction over the grid (an error estimate of
+            the chain's discretisation; the interpolation between points adds far less).
+
+    Between grid points the log tail is interpolated linearly; beyond the table (its reach,
+    or where the tail falls below 1e-11, the round-off floor of the solved chain) it is
+    extended with the slope of the last grid step (the tail of a reflected random walk
+    falls exponentially, Cramer-Lundberg).
+    """
+
+    xs: FloatArray
+    log_tails: FloatArray
+    precision: float
+
+    def __call__(self, value: float) -> float:
+        """P(C > value); 1 at or below 0."""
+        if value <= 0.0:
+            return 1.0
+        xs, logs = self.xs, self.log_tails
+        if value >= xs[-1]:
+            slope = (logs[-1] - logs[-2]) / (xs[-1] - xs[-2])
+            return float(math.exp(logs[-1] + slope * (value - xs[-1])))
+        return float(math.exp(float(np.interp(value, xs, logs))))
+
+
+def cusum_tail_curve(
+    k: float,
+    h: float,
+    *,
+    cdf: ZCdf = normal_cdf,
+    side: Literal["upper", "lower"] = "upper",
+    reach: float | None = None,
+    cell: float = 0.05,
+) -> CusumTailCurve:
+    """The stationary law of one CUSUM sum as a tail curve: one chain solve for every p-value.
+
+    Like :func:`cusum_tail` with ``subgroups_since_start=None``, but the stationary vector of
+    the chain is solved once on a grid aligned at 0 (spacings ``cell`` and ``2 cell``,
+    Richardson-extrapolated at the common points) and kept, so that the p-value of any later
+    sum is an interpolation. ``reach`` (default ``4 h``) is where the table ends.
+
+    Examples:
+        >>> curve = cusum_tail_curve(0.5, 5.0)
+        >>> abs(curve(5.5) / cusum_tail(0.5, 5.0, 5.5) - 1.0) < 1e-3
+        True
+    """
+    ref = _reference_value(k)
+    if ref <= 0:
+        raise ConfigError("k must be greater than 0 for the stationary law of the sum")
+    interval = _positive("h", h)
+    top = 4.0 * interval if reach is None else _positive("reach", reach)
+    if side not in ("upper", "lower"):
+        raise ConfigError(f"side must be 'upper' or 'lower', got {side!r}")
+    spacing = _positive("cell", cell)
+    base = _checked_cdf(cdf)
+    law = base if side == "upper" else _mirrored(base)
+    margin = 14.0 / ref
+    width = max(spacing, (top + margin) / _MOST_CELLS)
+    width = (top / 2.0) / max(1, math.floor(top / (2.0 * width)))  # 2 * width divides the reach
+
+    def tails(w: float) -> FloatArray:
+        cells = math.ceil((top + margin) / w)
+        bounds = np.arange(cells + 1) * w
+        centers = np.concatenate([[0.0], bounds[1:] - w / 2.0])
+        cumulative = law(bounds[None, :] - centers[:, None] + ref)
+        moves = np.diff(np.concatenate([np.zeros((cells + 1, 1)), cumulative], axis=1), axis=1)
+        moves[:, -1] += 1.0 - cumulative[:, -1]
+        _, distribution = _propagated_tail(moves, moves[0], np.zeros(cells + 1, dtype=np.bool_), None)
+        beyond = np.cumsum(distribution[::-1])[::-1]  # beyond[i]: mass in cells i, i + 1, ...
+        return beyond[1:]  # P(C > j w), j = 0 .. cells - 1
+
+    fine = tails(width)
+    coarse = tails(2.0 * width)
+    points = round(top / (2.0 * width)) + 1
+    fine_common = fine[0 : 2 * points : 2][:points]
+    coarse_common = coarse[:points]
+    extrapolated = fine_common + (fine_common - coarse_common) / 3.0
+    extrapolated = np.clip(extrapolated, 1e-300, 1.0).astype(np.float64)
+    # below about 1e-11 the solved vector is at its round-off floor: end the table there
+    reliable = int(np.argmax(extrapolated < _CURVE_FLOOR)) if np.any(extrapolated < _CURVE_FLOOR) else points
+    points = max(3, reliable)
+    extrapolated = extrapolated[:points]
+    change = np.abs(fine_common - coarse_common)[:points] / 3.0
+    precision = float(np.max(change / extrapolated))
+    xs = np.arange(points, dtype=np.float64) * 2.0 * width
+    return CusumTailCurve(xs, np.log(extrapolated).astype(np.float64), precision)
+
+
+_CURVE_FLOOR: Final = 1e-11

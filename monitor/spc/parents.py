@@ -343,14 +343,16 @@ class _Triangular:
         xc = np.clip(x, a, b)
         with np.errstate(divide="ignore", invalid="ignore"):
             left = (xc - a) ** 2 / (self._width * (c - a))
-            right = 1.0 - (b - xc) ** 2 / (self._width * (b - c))
+            # 1 - (b - x)^2 / (w (b - c)) written as a sum of non-negative terms (no cancellation
+            # when the mode is at or near the low end)
+            right = ((b - c) * (c - a) + (xc - c) * (2.0 * b - c - xc)) / (self._width * (b - c))
         return np.where(xc <= c, np.where(xc > a, left, 0.0), np.where(xc < b, right, 1.0))
 
     def sf(self, x: FloatArray) -> FloatArray:
         a, c, b = self.low, self.mode, self.high
         xc = np.clip(x, a, b)
         with np.errstate(divide="ignore", invalid="ignore"):
-            left = 1.0 - (xc - a) ** 2 / (self._width * (c - a))
+            left = ((c - a) * (b - c) + (c - xc) * (xc + c - 2.0 * a)) / (self._width * (c - a))
             right = (b - xc) ** 2 / (self._width * (b - c))
         return np.where(xc >= c, np.where(xc < b, right, 0.0), np.where(xc > a, left, 1.0))
 
@@ -369,17 +371,25 @@ class _Triangular:
 
     def ppf(self, q: FloatArray) -> FloatArray:
         a, c, b = self.low, self.mode, self.high
-        split = (c - a) / self._width
-        left = a + np.sqrt(np.maximum(q, 0.0) * self._width * (c - a))
-        right = b - np.sqrt(np.maximum(1.0 - q, 0.0) * self._width * (b - c))
-        return np.where(q <= split, left, right)
+        w = self._width
+        split = (c - a) / w
+        left = a + np.sqrt(np.maximum(q, 0.0) * w * (c - a))
+        # b - sqrt((1 - q) w (b - c)) as c + (b - c)(q w - (c - a)) / ((b - c) + sqrt(...)):
+        # no cancellation for small q when the mode is at the low end
+        root = np.sqrt(np.maximum(1.0 - q, 0.0) * w * (b - c))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            right = c + (b - c) * (q * w - (c - a)) / ((b - c) + root)
+        return np.where(q <= split, left, np.where(b > c, right, b))
 
     def isf(self, q: FloatArray) -> FloatArray:
         a, c, b = self.low, self.mode, self.high
-        split = (b - c) / self._width
-        right = b - np.sqrt(np.maximum(q, 0.0) * self._width * (b - c))
-        left = a + np.sqrt(np.maximum(1.0 - q, 0.0) * self._width * (c - a))
-        return np.where(q <= split, right, left)
+        w = self._width
+        split = (b - c) / w
+        right = b - np.sqrt(np.maximum(q, 0.0) * w * (b - c))
+        root = np.sqrt(np.maximum(1.0 - q, 0.0) * w * (c - a))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            left = c - (c - a) * (q * w - (b - c)) / ((c - a) + root)
+        return np.where(q <= split, right, np.where(c > a, left, a))
 
 
 # ---------------------------------------------------------------- the empirical lattice
@@ -432,7 +442,9 @@ class EmpiricalGrid:
             raise ConfigError("empirical grid weights must be a non-empty list of non-negative numbers")
         if not (math.isfinite(self.origin) and math.isfinite(self.step) and self.step > 0):
             raise ConfigError("empirical grid origin must be finite and its step positive")
-        w = w / w.sum()
+        total = float(w.sum())
+        if abs(total - 1.0) > 1e-12:  # weights already summing to one are kept bit for bit
+            w = w / total
         w.setflags(write=False)
         object.__setattr__(self, "weights", w)
         prefix = np.concatenate([[0.0], np.cumsum(w)])
@@ -968,7 +980,7 @@ class FitReport:
         best: the family with the lowest AIC (equal to ``chosen`` unless it fell back).
         anderson_darling: the Anderson-Darling statistic of ``best`` on the sample.
         p_value: its goodness-of-fit p-value (parametric bootstrap, see ``method``).
-        fell_back: True when ``p_value < alpha`` and ``chosen`` is empirical.
+        fell_back: True when ``p_value <= alpha`` and ``chosen`` is empirical.
         skipped: families not fitted, with the reason (e.g. they need positive readings).
         method: how the p-value was obtained.
     """
@@ -1066,8 +1078,9 @@ def fit_parent(
     Goodness of fit: the Anderson-Darling statistic of the chosen family, with a p-value from
     a parametric bootstrap that re-fits every simulated sample (so the estimated parameters
     are accounted for): ``p = (1 + #{A*_b >= A}) / (bootstrap + 1)``, samples drawn with
-    ``numpy.random.default_rng(seed)`` (deterministic). Below ``alpha`` the empirical parent
-    (:func:`empirical`) is chosen instead.
+    ``numpy.random.default_rng(seed)`` (deterministic). At or below ``alpha`` (the usual rule
+    for Monte Carlo p-values, exact in level when ``alpha (bootstrap + 1)`` is a whole number)
+    the empirical parent (:func:`empirical`) is chosen instead.
 
     Examples:
         >>> rng = np.random.default_rng(7)
@@ -1122,7 +1135,7 @@ def fit_parent(
         if _anderson_darling(refit, draw) >= statistic:
             exceed += 1
     p_value = (1.0 + exceed) / (bootstrap + 1.0)
-    fell_back = p_value < alpha
+    fell_back = p_value <= alpha
     chosen = empirical(x) if fell_back else best
     return FitReport(
         chosen=chosen,
