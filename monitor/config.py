@@ -27,7 +27,7 @@ import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Annotated, Literal, TypeAlias
+from typing import TYPE_CHECKING, Annotated, Literal, TypeAlias
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 from ruamel.yaml import YAML
@@ -50,6 +50,11 @@ from monitor.spc import (
     WindowSubgrouper,
 )
 from monitor.topics import overlaps
+
+if TYPE_CHECKING:
+    from monitor.signal_pvalues import ParentChoice
+
+from monitor.spc.exact_scale import ExactScale
 
 __all__ = [
     "ChartConfig",
@@ -226,6 +231,8 @@ class ChartConfig(_Strict):
     readings_every: float | None = None
     flood_factor: Annotated[float, Field(gt=1, le=1000)] = 5.0
     timestamps: TimestampPolicy = TimestampPolicy()
+    parent: Annotated[str, Field(min_length=1, max_length=400)] = "normal"
+    probability_limits: bool = False
 
     @field_validator("readings_every", mode="before")
     @classmethod
@@ -258,6 +265,12 @@ class ChartConfig(_Strict):
         if issues:
             raise ConfigError(issues[0].message)
         return rules
+
+    def parent_choice(self) -> ParentChoice:
+        """The parent model setting, read (the config must have passed :func:`load_config`)."""
+        from monitor.signal_pvalues import parse_parent_choice  # noqa: PLC0415 - laws load scipy parts
+
+        return parse_parent_choice(self.parent)
 
     def spec(self) -> ChartSpec:
         """The core chart specification of this chart."""
@@ -292,7 +305,16 @@ class ChartConfig(_Strict):
             ),
             cusum=CusumSettings(k=self.cusum.k, h=self.cusum.h, head_start=self.cusum.head_start),
             moving_range_span=self.moving_range_span,
+            exact_scale=self._exact_scale(),
         )
+
+    def _exact_scale(self) -> ExactScale | None:
+        if not self.probability_limits:
+            return None
+        parent = self.parent_choice().parent
+        if parent is None:  # pragma: no cover - refused by load_config
+            raise ConfigError("probability limits need a parent model with its parameters")
+        return ExactScale(parent)
 
     def subgrouper(self) -> CountSubgrouper | WindowSubgrouper:
         """A fresh subgroup former for this chart."""
@@ -592,6 +614,57 @@ def _chart_issues(chart: ChartConfig, i: int) -> list[ConfigIssue]:
         )
     _, rule_issues = _rules(chart.rules, (*loc, "rules"))
     issues.extend(rule_issues)
+    if chart.probability_limits:
+        if not {ChartKind.XBAR_R, ChartKind.XBAR_S, ChartKind.INDIVIDUALS} & set(kinds):
+            issues.append(
+                ConfigIssue(
+                    (*loc, "probability_limits"),
+                    "probability limits apply to the mean and individuals panels: "
+                    "add xbar_r, xbar_s or individuals_mr to kinds",
+                )
+            )
+        if chart.parent.strip().lower() == "normal":
+            issues.append(
+                ConfigIssue(
+                    (*loc, "probability_limits"),
+                    "probability limits need a parent model other than normal, with its parameters "
+                    "(for example parent: gamma:shape=2,scale=1.5); under the normal model they are "
+                    "the usual limits",
+                )
+            )
+    if chart.parent.strip().lower() != "normal":
+        if attribute:
+            issues.append(
+                ConfigIssue(
+                    (*loc, "parent"),
+                    "a parent model describes measured readings; p and u charts count events "
+                    "(leave parent out or set it to normal)",
+                )
+            )
+        else:
+            try:
+                choice = chart.parent_choice()
+            except ConfigError as exc:
+                issues.append(ConfigIssue((*loc, "parent"), str(exc)))
+            else:
+                if chart.probability_limits and choice.mode != "fixed":
+                    issues.append(
+                        ConfigIssue(
+                            (*loc, "probability_limits"),
+                            "probability limits need the parent model with its parameters "
+                            "(for example parent: gamma:shape=2,scale=1.5); monitor baseline "
+                            "prints the model fitted to good history",
+                        )
+                    )
+                if choice.mode == "fit" and limits.baseline is None:
+                    issues.append(
+                        ConfigIssue(
+                            (*loc, "parent"),
+                            f"parent {chart.parent!r} is fitted to the Phase I baseline readings: set "
+                            "limits.baseline, or give the model with its parameters "
+                            "(for example gamma:shape=2,scale=1.5)",
+                        )
+                    )
     return issues
 
 

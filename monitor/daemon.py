@@ -21,6 +21,7 @@ from __future__ import annotations
 import asyncio
 import base64
 import contextlib
+import gc
 import hashlib
 import os
 import re
@@ -60,6 +61,7 @@ from monitor.ingest import Decoded, PayloadError, PayloadMapping, Router, decode
 from monitor.logs import get_logger
 from monitor.mqtt import BrokerSettings, Incoming, MqttLink, PublishError, TlsSettings
 from monitor.sharding import owns, shard_client_id, shard_from_environment
+from monitor.signal_pvalues import ChartPValues, LawWorkshop, shared_workshop
 from monitor.spc import (
     ChartSet,
     ChartSpec,
@@ -74,7 +76,6 @@ from monitor.spc import (
     StateError,
     Subgroup,
     WindowSubgrouper,
-    p_value,
 )
 from monitor.store import (
     AlertRow,
@@ -295,11 +296,19 @@ class ChartRuntime:
     """Everything the daemon keeps for one chart: subgroup former, chart set, alert tracker."""
 
     def __init__(
-        self, chart_id: str, config: ChartConfig, alerts: AlertSettings, *, first_index: int = 0
+        self,
+        chart_id: str,
+        config: ChartConfig,
+        alerts: AlertSettings,
+        *,
+        first_index: int = 0,
+        workshop: LawWorkshop | None = None,
     ) -> None:
         self.chart_id = chart_id
         self.config = config
         self.spec = config.spec()
+        choice = config.parent_choice()
+        self.p_values = ChartPValues(chart_id, self.spec, choice, workshop or shared_workshop())
         self.mapping = PayloadMapping(**config.payload.model_dump())
         self.grouper: CountSubgrouper | WindowSubgrouper = config.subgrouper()
         self.chart_set = ChartSet(self.spec, first_index=first_index)
@@ -319,6 +328,13 @@ class ChartRuntime:
         self._flood_noted = False
         self.dirty = True
         self.status_dirty = True
+        self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+
+    @property
+    def typical_n(self) -> int:
+        """The subgroup size the configuration asks for (the smallest one for time windows)."""
+        sub = self.config.subgroup
+        return sub.size if sub.size is not None else sub.min_size
 
     # -- state
 
@@ -335,6 +351,7 @@ class ChartRuntime:
             "carried": [[r.value, r.time, r.exposure] for r in self.carried],
             "readings": self.readings,
             "duplicates": self.duplicates,
+            "parent": self.p_values.to_state(),
         }
 
     def restore(self, state: Mapping[str, object]) -> list[str]:
@@ -395,6 +412,10 @@ class ChartRuntime:
             value = state.get(name)
             if isinstance(value, int):
                 setattr(self, name, value)
+        parent_state = state.get("parent")
+        if isinstance(parent_state, dict):
+            self.p_values.restore(parent_state)
+        self.p_values.prepare(self.chart_set.parameters, self.typical_n)
         self.dirty = bool(notes)
         return notes
 
@@ -418,6 +439,9 @@ class ChartRuntime:
         source = row.source if row.source in ("standard", "baseline") else "baseline"
         self.chart_set.adopt(ProcessParameters(row.mean, row.sigma, source=source))
         self.limits_version = row.version
+        stored_parent = row.detail.get("parent_record") if isinstance(row.detail, dict) else None
+        self.p_values.adopt(stored_parent if isinstance(stored_parent, dict) else None)
+        self.p_values.prepare(self.chart_set.parameters, self.typical_n)
         self.new_settings = False
         self.dirty = True
         self.status_dirty = True
@@ -483,19 +507,27 @@ class ChartRuntime:
             for subgroup in [made] if isinstance(made, Subgroup) else made:
                 self._chart(subgroup, now_ms, out)
 
-    def advance(self, now: float, out: ChartOutput) -> None:
-        """Close the time windows whose end (plus lateness) has passed."""
+    def advance(self, now: float, out: ChartOutput) -> bool:
+        """Close the time windows whose end (plus lateness) has passed; True if a parent was just fitted."""
+        fitted = self.p_values.sample is not None and self.p_values.poll_fit()
+        if fitted:
+            self.dirty = True
+            self.p_values.prepare(self.chart_set.parameters, self.typical_n)
         if isinstance(self.grouper, WindowSubgrouper):
             closed = self.grouper.advance(now)
             if closed:
                 self.dirty = True
             for subgroup in closed:
                 self._chart(subgroup, round(now * 1000), out)
+        return fitted
 
     def _chart(self, subgroup: Subgroup, now_ms: int, out: ChartOutput) -> None:
         chart_set = self.chart_set
         charted = chart_set.monitoring  # the subgroup that completes a baseline is not charted
+        baseline = () if charted else (*chart_set.baseline_subgroups, subgroup)
         signals = chart_set.update(subgroup)
+        if not charted and chart_set.monitoring:
+            self._baseline_done(baseline, index_after=chart_set.next_index)
         index = chart_set.next_index - 1
         if chart_set.monitoring and (self.limits_version == 0 or self.new_settings):
             self.new_settings = False
@@ -562,11 +594,20 @@ class ChartRuntime:
                 )
             )
 
+    def _baseline_done(self, baseline: tuple[Subgroup, ...], *, index_after: int) -> None:
+        """Fit the parent model (if fitted) to the baseline readings the estimate kept."""
+        estimate = self.chart_set.estimate
+        excluded = set() if estimate is None else {e.subgroup for e in estimate.excluded}
+        first = index_after - len(baseline)
+        sample = [v for i, s in enumerate(baseline) if first + i not in excluded for v in s.values]
+        self.p_values.fit(sample)
+        self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+
     def _context(self, signal_: Signal, subgroup: Subgroup) -> SignalContext:
         n = subgroup.n
         if signal_.statistic.value == "moving_range":
             n = self.spec.moving_range_span
-        result = p_value(signal_, n=n, rules=self.spec.rules, limit_sigma=self.spec.limit_sigma)
+        result = self.p_values.of(signal_, n, self.chart_set.parameters)
         return SignalContext(
             chart_id=self.chart_id,
             hint=self.config.hint,
@@ -1063,9 +1104,10 @@ class Daemon:
                     continue
                 self.handle(message, pending)
             now = time.time()
+            fitted = False
             for runtime in list(self.runtimes.values()):
-                runtime.advance(now, pending.output)
-            adopted = False
+                fitted = runtime.advance(now, pending.output) or fitted
+            adopted = fitted  # a parent fitted to a baseline is checkpointed at once
             if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
                 adopted = await self._refresh_limits(self.store)
             if adopted or not pending.empty():
@@ -1217,6 +1259,9 @@ class Daemon:
                 helpers = [group.create_task(self.database.run(), name="monitor.store.watch")]
                 if watchdog.enabled:
                     helpers.append(group.create_task(watchdog.run(), name="monitor.systemd.watchdog"))
+                # What start-up loaded (libraries, configuration, checkpoints) lives as long as the
+                # daemon: out of the collector's full passes, which otherwise took ~0.2 s each.
+                gc.freeze()
                 self.ready.set()
                 sdnotify.ready(
                     f"subscribed to {len(self.subscriptions)} filters, {len(self.runtimes)} charts"

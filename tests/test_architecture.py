@@ -46,6 +46,7 @@ def test_every_exported_name_exists_and_is_listed_once():
         "chartset",
         "constants",
         "errors",
+        "exact_scale",
         "laws",
         "limits",
         "parents",

@@ -98,6 +98,48 @@ def test_check_prints_in_control_arls_and_warns_about_a_trigger_happy_chart(tmp_
     assert "not a safety system" in text
 
 
+def test_check_gives_the_in_control_arl_under_the_charts_parent_model(tmp_path):
+    """Under a fixed exponential parent the mean panel's ARL is 1 / P(beyond the limits) of the exact law.
+
+    Reference: the mean of 4 exponential readings of mean 2 is gamma(4, scale 0.5) (scipy.stats);
+    with probability limits the rate is the normal one, ARL 370.4 (1 / (2 Phi(-3))).
+    """
+    from scipy import stats  # noqa: PLC0415
+
+    config = tmp_path / "plant.yaml"
+    config.write_text(
+        textwrap.dedent(
+            """\
+            charts:
+              - id: dryer/time
+                subgroup: {size: 4}
+                kinds: [xbar_r]
+                limits: {mean: 2, sigma: 2}
+                rules: none
+                parent: "exponential:mean=2"
+              - id: dryer/time-exact
+                subgroup: {size: 4}
+                kinds: [xbar_r]
+                limits: {mean: 2, sigma: 2}
+                rules: none
+                parent: "exponential:mean=2"
+                probability_limits: true
+            """
+        )
+    )
+    result = monitor("check", "--config", str(config), "--json")
+    assert result.returncode == 0, result.stderr
+    charts = {c["id"]: c["budget"] for c in json.loads(result.stdout)["charts"]}
+    plain, exact = charts["dryer/time"], charts["dryer/time-exact"]
+    assert plain["parent"] == "exponential(mean=2)"
+    # limits 2 -/+ 3 * 2 / sqrt(4): the lower one (-1) cannot be reached
+    assert plain["panels"][0]["arl"] == pytest.approx(1.0 / stats.gamma(4, scale=0.5).sf(5.0), rel=1e-4)
+    assert plain["panels"][0]["arl"] < 370.4 / 3  # normal-theory limits alarm far more often here
+    assert exact["panels"][0]["arl"] == pytest.approx(370.4, abs=0.1)
+    text = monitor("check", "--config", str(config)).stdout
+    assert "parent:    exponential(mean=2)" in text
+
+
 def _leaf_parsers() -> dict[str, object]:
     """Every command and sub-command of `monitor`, by its words."""
     import argparse  # noqa: PLC0415

@@ -6,6 +6,7 @@ import textwrap
 from pathlib import Path
 
 import pytest
+from scipy import special, stats
 
 from monitor.config import ConfigProblems, load_config, load_config_text, parse_duration
 from monitor.spc import ChartKind, ChartSet, RuleId, SigmaEstimator
@@ -342,6 +343,96 @@ CATALOGUE = [
         ["plant.yaml:4: charts[0].subgroup.window: Value error, 'soon' is not a duration"],
     ),
     (
+        "an unknown parent model",
+        """\
+        charts:
+          - id: a
+            kinds: [xbar_r]
+            subgroup: {size: 4}
+            limits: {mean: 1, sigma: 1}
+            parent: cauchy
+        """,
+        ["plant.yaml:6: charts[0].parent: unknown parent 'cauchy'; allowed: normal, auto, empirical"],
+    ),
+    (
+        "a parent model with a missing parameter",
+        """\
+        charts:
+          - id: a
+            kinds: [xbar_r]
+            subgroup: {size: 4}
+            limits: {mean: 1, sigma: 1}
+            parent: "gamma:shape=2"
+        """,
+        ["plant.yaml:6: charts[0].parent: gamma takes parameters shape, scale; missing: scale"],
+    ),
+    (
+        "a fitted parent without a baseline to fit it to",
+        """\
+        charts:
+          - id: a
+            kinds: [xbar_r]
+            subgroup: {size: 4}
+            limits: {mean: 1, sigma: 1}
+            parent: auto
+        """,
+        ["plant.yaml:6: charts[0].parent: parent 'auto' is fitted to the Phase I baseline readings"],
+    ),
+    (
+        "a parent model on a count chart",
+        """\
+        charts:
+          - id: a
+            kinds: [p]
+            subgroup: {size: 1}
+            limits: {proportion: 0.02}
+            parent: "gamma:shape=2,scale=1"
+        """,
+        ["plant.yaml:6: charts[0].parent: a parent model describes measured readings"],
+    ),
+    (
+        "probability limits without a parent model",
+        """\
+        charts:
+          - id: a
+            kinds: [xbar_r]
+            subgroup: {size: 4}
+            limits: {mean: 1, sigma: 1}
+            probability_limits: true
+        """,
+        [
+            "plant.yaml:6: charts[0].probability_limits: probability limits need a parent model other than normal"
+        ],
+    ),
+    (
+        "probability limits with a parent still to be fitted",
+        """\
+        charts:
+          - id: a
+            kinds: [xbar_r]
+            subgroup: {size: 4}
+            limits: {baseline: {subgroups: 20}}
+            parent: auto
+            probability_limits: true
+        """,
+        [
+            "plant.yaml:7: charts[0].probability_limits: probability limits need the parent model with its parameters"
+        ],
+    ),
+    (
+        "probability limits on a chart without a mean panel",
+        """\
+        charts:
+          - id: a
+            kinds: [ewma]
+            subgroup: {size: 4}
+            limits: {mean: 1, sigma: 1}
+            parent: "gamma:shape=2,scale=0.5"
+            probability_limits: true
+        """,
+        ["plant.yaml:7: charts[0].probability_limits: probability limits apply to the mean and individuals"],
+    ),
+    (
         "no charts",
         """\
         charts: []
@@ -391,3 +482,29 @@ def test_a_missing_file_is_reported_plainly(tmp_path):
     """A missing file is one clear line, not a traceback."""
     with pytest.raises(ConfigProblems, match="no such file"):
         load_config(tmp_path / "absent.yaml")
+
+
+def test_probability_limits_reach_the_chart_as_an_exact_scale():
+    """A fixed parent with probability_limits gives the mean panel the law's quantiles as limits."""
+    config = load_config_text(
+        textwrap.dedent(
+            """\
+            charts:
+              - id: dryer/time
+                kinds: [xbar_r]
+                subgroup: {size: 4}
+                limits: {mean: 2, sigma: 2}
+                parent: "exponential:mean=2"
+                probability_limits: true
+            """
+        ),
+        "plant.yaml",
+    )
+    spec = config.charts[0].spec()
+    assert spec.exact_scale is not None
+    _, lower, upper = spec.exact_scale.lines(4, 3.0)
+    law = stats.gamma(4, scale=0.5)  # the mean of 4 exponentials of mean 2
+    assert (lower, upper) == (
+        pytest.approx(law.ppf(special.ndtr(-3.0)), rel=1e-9),
+        pytest.approx(law.isf(special.ndtr(-3.0)), rel=1e-9),
+    )

@@ -51,6 +51,7 @@ from monitor.spc.charts import (
     XbarSChart,
 )
 from monitor.spc.errors import ConfigError, StateError
+from monitor.spc.exact_scale import ExactScale
 from monitor.spc.limits import (
     AttributeKind,
     PhaseOneEstimate,
@@ -130,6 +131,7 @@ class ChartSpec:
     ewma: EwmaSettings = field(default_factory=EwmaSettings)
     cusum: CusumSettings = field(default_factory=CusumSettings)
     moving_range_span: int = 2
+    exact_scale: ExactScale | None = None
 
     def __post_init__(self) -> None:
         if not self.kinds:
@@ -178,7 +180,7 @@ class ChartSpec:
                 "max_rounds": b.max_rounds,
                 "max_excluded_share": b.max_excluded_share,
             }
-        return {
+        state: State = {
             "kinds": [k.value for k in self.kinds],
             "rules": [r.to_state() for r in self.rules],
             "limit_sigma": self.limit_sigma,
@@ -192,6 +194,9 @@ class ChartSpec:
             "cusum": {"k": self.cusum.k, "h": self.cusum.h, "head_start": self.cusum.head_start},
             "moving_range_span": self.moving_range_span,
         }
+        if self.exact_scale is not None:  # only when set: older snapshots stay comparable
+            state["probability_limits"] = self.exact_scale.to_state()
+        return state
 
     @staticmethod
     def limit_settings(spec_state: State) -> State:
@@ -245,9 +250,17 @@ class ChartSpec:
                 limit_sigma=limit_sigma,
                 moving_range_span=self.moving_range_span,
                 first_index=first_index,
+                scale=self.exact_scale,
             )
         shewhart = XbarRChart if kind is ChartKind.XBAR_R else XbarSChart
-        return shewhart(mean=mean, sigma=sigma, rules=rules, limit_sigma=limit_sigma, first_index=first_index)
+        return shewhart(
+            mean=mean,
+            sigma=sigma,
+            rules=rules,
+            limit_sigma=limit_sigma,
+            first_index=first_index,
+            scale=self.exact_scale,
+        )
 
 
 @dataclass(frozen=True, eq=False)
@@ -300,6 +313,11 @@ class ChartSet:
     def baseline_collected(self) -> int:
         """Baseline subgroups collected so far."""
         return len(self._baseline)
+
+    @property
+    def baseline_subgroups(self) -> tuple[Subgroup, ...]:
+        """The baseline subgroups collected so far (empty once the limits are set)."""
+        return tuple(self._baseline)
 
     @property
     def next_index(self) -> int:

@@ -7,10 +7,11 @@ Each signal gets the probability, with the process in control, of what it report
   range: the exact law of the normal range; p and u charts: the normal approximation);
 * a run rule: the probability that its pattern completes at a given subgroup of a long
   in-control sequence (either side), from the closed forms for independent continuous readings;
-* CUSUM: not yet computed here (it needs the Markov-chain law of the sums).
+* CUSUM: not here; the tail of the sum's stationary law is a Markov chain
+  (:func:`monitor.spc.arl.cusum_tail_curve`), which the daemon builds once per chart.
 
-Each result names its method and the parent model. Exact laws for non-normal processes are the
-subject of :mod:`monitor.spc.laws` (to come); until then the parent is ``normal``.
+Each result names its method and the parent model (here always ``normal``). Exact laws for
+non-normal processes are in :mod:`monitor.spc.laws`.
 
 Examples:
     >>> from monitor.spc import IndividualsChart, Subgroup

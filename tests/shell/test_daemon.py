@@ -19,9 +19,11 @@ import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
+import numpy as np
 import psycopg
 import pytest
 from psycopg import sql
+from scipy import stats
 
 from tests.shell.harness import (
     DaemonProcess,
@@ -906,3 +908,84 @@ def test_changing_only_the_rules_keeps_the_estimated_limits(plant):
     assert sqlite_rows(plant.db, "select version from limits") == [(1,)]
     (points,) = sqlite_rows(plant.db, "select points from subgroups where idx = 6")[0]
     assert json.loads(points)["xbar_s"]["mean"]["center"] == pytest.approx(sum(values[:20]) / 20)
+
+
+def test_alerts_carry_the_exact_p_value_under_the_charts_parent_model(plant):
+    """With ``parent: gamma:...`` a signal's p-value is the gamma law's tail, not the normal one.
+
+    Reference: the mean of n gamma(shape a, scale s) readings is gamma(n a, s / n) (sums of
+    independent gammas with a common scale), evaluated with scipy.stats.
+    """
+    plant.write(
+        """\
+        - id: kiln/cure-time
+          topic: "{root}/kiln/cure-time"
+          unit: min
+          payload: {{format: json, value: v, timestamp: ts, sequence: seq}}
+          subgroup: {{size: 4}}
+          kinds: [xbar_r]
+          limits: {{mean: 8.0, sigma: 4.0}}
+          rules: none
+          parent: "gamma:shape=4,scale=2"
+        """
+    )
+    watcher = Subscriber(f"{plant.prefix}/alerts/#")
+    daemon = plant.daemon().start()
+    try:
+        daemon.wait_log("law_ready", 30.0)  # the law of the mean of 4 is built off the event loop
+        publish(plant.topic("kiln/cure-time"), readings([15.0, 16.0, 14.0, 17.0]))  # mean 15.5 > 8 + 3 * 2
+        received = watcher.wait_for(1)
+    finally:
+        daemon.stop()
+        watcher.close()
+    assert len(received) == 1
+    data = json.loads(received[0][1])["data"]
+    assert data["parent_model"] == "gamma(shape=4, scale=2)"
+    assert data["p_value_method"] == "closed form"
+    assert data["p_value"] == pytest.approx(stats.gamma(16.0, scale=0.5).sf(15.5), rel=1e-9)
+    # normal theory would have called this point about fifty times less likely
+    assert data["p_value"] > 10 * stats.norm.sf((15.5 - 8.0) / 2.0)
+    stored = sqlite_rows(plant.db, "select p_value, method from signals")
+    assert stored == [(pytest.approx(data["p_value"]), "closed form")]
+
+
+def test_a_parent_fitted_to_the_baseline_is_kept_across_a_restart(plant):
+    """``parent: auto`` is fitted to the Phase I readings once; a restart continues with the same model."""
+    plant.write(
+        """\
+        - id: filler/leak-time
+          topic: "{root}/filler/leak-time"
+          unit: s
+          subgroup: {{size: 5}}
+          kinds: [xbar_r, cusum]
+          limits: {{baseline: {{subgroups: 30, exclude_out_of_control: false}}}}
+          rules: none
+          parent: auto
+        """
+    )
+    rng = np.random.default_rng(17)
+    baseline = [float(v) for v in rng.gamma(1.5, 2.0, 150)]  # clearly right-skewed leak-down times
+    daemon = plant.daemon().start()
+    try:
+        publish(plant.topic("filler/leak-time"), [f"{v:.4f}" for v in baseline])
+        daemon.wait_log("parent_fitted", 60.0)
+    finally:
+        daemon.stop()
+    fitted = next(e for e in daemon.events() if e.get("event") == "parent_fitted")
+    assert str(fitted["parent"]).split("(")[0] in ("gamma", "weibull", "lognormal")
+    watcher = Subscriber(f"{plant.prefix}/alerts/#")
+    built = sum(1 for e in daemon.events() if e.get("event") == "law_ready")
+    again = plant.daemon().start()
+    try:
+        # laws of the mean of 5 and of 1 reading, and the tails of both CUSUM sums
+        again.wait_log("law_ready", 60.0, count=built + 4)
+        publish(plant.topic("filler/leak-time"), ["14.0", "15.0", "13.5", "16.0", "14.5"])
+        received = watcher.wait_for(1)
+    finally:
+        again.stop()
+        watcher.close()
+    assert sum(1 for e in again.events() if e.get("event") == "parent_fitted") == 1  # not fitted again
+    data = json.loads(received[0][1])["data"]
+    assert data["parent_model"] == fitted["parent"]
+    assert not data["p_value_method"].startswith("normal approximation")
+    assert 0.0 < data["p_value"] < 0.01

@@ -55,7 +55,8 @@ from monitor.spc.charts._math import (
     sd_of,
 )
 from monitor.spc.charts.base import BatchResult, Point
-from monitor.spc.errors import ConfigError
+from monitor.spc.errors import ConfigError, StateError
+from monitor.spc.exact_scale import ExactScale
 from monitor.spc.rules import Rule, RuleSet, western_electric
 from monitor.spc.signals import Signal
 from monitor.spc.subgroups import Subgroup, SubgroupBatch
@@ -78,6 +79,7 @@ class _MeanAndSpread(ChartBase):
         rules: Sequence[Rule] | None = None,
         limit_sigma: float = 3.0,
         first_index: int = 0,
+        scale: ExactScale | None = None,
     ) -> None:
         super().__init__(first_index=first_index)
         self.mean = check_finite("mean", mean)
@@ -85,6 +87,7 @@ class _MeanAndSpread(ChartBase):
         self.limit_sigma = check_positive("limit_sigma", limit_sigma)
         self.rules = tuple(western_electric() if rules is None else rules)
         self._rule_set = RuleSet(self.rules, limit_sigma=self.limit_sigma)
+        self.scale = scale
 
     def __repr__(self) -> str:
         """Class, parameters and next index."""
@@ -109,10 +112,14 @@ class _MeanAndSpread(ChartBase):
         index = self._next
         values = subgroup.values
         xbar = mean_of(values)
-        se = self.sigma / math.sqrt(n)
-        half = self.limit_sigma * se
-        z = (xbar - self.mean) / se
-        location = Point(Statistic.MEAN, index, n, xbar, self.mean, self.mean - half, self.mean + half)
+        if self.scale is None:
+            se = self.sigma / math.sqrt(n)
+            half = self.limit_sigma * se
+            z = (xbar - self.mean) / se
+            location = Point(Statistic.MEAN, index, n, xbar, self.mean, self.mean - half, self.mean + half)
+        else:
+            z = self.scale.z(xbar, n)
+            location = Point(Statistic.MEAN, index, n, xbar, *self.scale.lines(n, self.limit_sigma))
         factors = self._factors(n)
         spread = Point(
             self.spread,
@@ -144,12 +151,18 @@ class _MeanAndSpread(ChartBase):
         index = index_range(first, m)
         sizes = batch.sizes
         means = row_means(batch)
-        se = self.sigma / np.sqrt(sizes)
-        half = self.limit_sigma * se
-        z = (means - self.mean) / se
-        location = make_trace(
-            Statistic.MEAN, index, sizes, means, self.mean, self.mean - half, self.mean + half
-        )
+        if self.scale is None:
+            se = self.sigma / np.sqrt(sizes)
+            half = self.limit_sigma * se
+            z = (means - self.mean) / se
+            location = make_trace(
+                Statistic.MEAN, index, sizes, means, self.mean, self.mean - half, self.mean + half
+            )
+        else:
+            z = self.scale.z_many(means, sizes)
+            location = make_trace(
+                Statistic.MEAN, index, sizes, means, *self.scale.lines_many(sizes, self.limit_sigma)
+            )
         center, lower, upper = self._spread_factor_rows(sizes)
         spread = make_trace(
             self.spread,
@@ -201,6 +214,8 @@ class _MeanAndSpread(ChartBase):
             "limit_sigma": self.limit_sigma,
             "rules": rules_state(self.rules),
         }
+        if self.scale is not None:
+            params["scale"] = self.scale.to_state()
         state = self._base_state()
         state["rule_set"] = self._rule_set.to_state()
         return self._envelope(params, state)
@@ -214,6 +229,7 @@ class _MeanAndSpread(ChartBase):
             sigma=get_float(params, "sigma"),
             limit_sigma=get_float(params, "limit_sigma"),
             rules=[Rule.from_state(r) for r in get_state_list(params, "rules")],
+            scale=_scale_from(params),
         )
         chart._restore_base(inner)
         chart._rule_set = rule_set_from(inner, "rule_set")
@@ -298,8 +314,10 @@ class IndividualsChart(ChartBase):
         limit_sigma: float = 3.0,
         moving_range_span: int = 2,
         first_index: int = 0,
+        scale: ExactScale | None = None,
     ) -> None:
         super().__init__(first_index=first_index)
+        self.scale = scale
         self.mean = check_finite("mean", mean)
         self.sigma = check_positive("sigma", sigma)
         self.limit_sigma = check_positive("limit_sigma", limit_sigma)
@@ -325,9 +343,13 @@ class IndividualsChart(ChartBase):
         require_sizes(self.kind, (subgroup.n,), minimum=1, maximum=1)
         index = self._next
         x = subgroup.values[0]
-        half = self.limit_sigma * self.sigma
-        z = (x - self.mean) / self.sigma
-        point = Point(Statistic.INDIVIDUAL, index, 1, x, self.mean, self.mean - half, self.mean + half)
+        if self.scale is None:
+            half = self.limit_sigma * self.sigma
+            z = (x - self.mean) / self.sigma
+            point = Point(Statistic.INDIVIDUAL, index, 1, x, self.mean, self.mean - half, self.mean + half)
+        else:
+            z = self.scale.z(x, 1)
+            point = Point(Statistic.INDIVIDUAL, index, 1, x, *self.scale.lines(1, self.limit_sigma))
         signals = [
             signal_from_hit(self.kind, Statistic.INDIVIDUAL, hit, point, z)
             for hit in self._rule_set.update(z, index=index)
@@ -365,11 +387,16 @@ class IndividualsChart(ChartBase):
         index = index_range(first, m)
         x = batch.values[:, 0]
         sizes = batch.sizes
-        half = self.limit_sigma * self.sigma
-        z = (x - self.mean) / self.sigma
-        individuals = make_trace(
-            Statistic.INDIVIDUAL, index, sizes, x, self.mean, self.mean - half, self.mean + half
-        )
+        if self.scale is None:
+            half = self.limit_sigma * self.sigma
+            z = (x - self.mean) / self.sigma
+            individuals = make_trace(
+                Statistic.INDIVIDUAL, index, sizes, x, self.mean, self.mean - half, self.mean + half
+            )
+        else:
+            z = self.scale.z_many(x, sizes)
+            center, lower, upper = self.scale.lines(1, self.limit_sigma)
+            individuals = make_trace(Statistic.INDIVIDUAL, index, sizes, x, center, lower, upper)
         span = self.moving_range_span
         joined = np.concatenate([np.asarray(self._recent, dtype=np.float64), x])
         windows = sliding_window_view(joined, span) if joined.shape[0] >= span else np.empty((0, span))
@@ -413,6 +440,8 @@ class IndividualsChart(ChartBase):
             "moving_range_span": self.moving_range_span,
             "rules": rules_state(self.rules),
         }
+        if self.scale is not None:
+            params["scale"] = self.scale.to_state()
         state = self._base_state()
         state["rule_set"] = self._rule_set.to_state()
         state["recent"] = list(self._recent)
@@ -428,8 +457,18 @@ class IndividualsChart(ChartBase):
             limit_sigma=get_float(params, "limit_sigma"),
             moving_range_span=get_int(params, "moving_range_span"),
             rules=[Rule.from_state(r) for r in get_state_list(params, "rules")],
+            scale=_scale_from(params),
         )
         chart._restore_base(inner)
         chart._rule_set = rule_set_from(inner, "rule_set")
         chart._recent = get_float_list(inner, "recent")
         return chart
+
+
+def _scale_from(params: State) -> ExactScale | None:
+    found = params.get("scale")
+    if found is None:
+        return None
+    if not isinstance(found, dict):
+        raise StateError(f"chart state: scale must be a mapping, got {found!r}")
+    return ExactScale.from_state(found)
