@@ -9,8 +9,8 @@ What ``monitor baseline`` does for one chart:
    the chart's iterative exclusion of out-of-control subgroups, and reports each exclusion;
 3. checks the readings of the kept subgroups for normality (Shapiro-Wilk up to 5000 readings,
    D'Agostino-Pearson above) and fits a parent model (:func:`monitor.spc.fit_parent`);
-4. says which subgroup size keeps the real false-alarm rate of normal-theory limits for the
-   mean near the nominal one under that parent;
+4. says which subgroup size keeps the true false-alarm rate of normal-theory limits for the
+   mean near the nominal one under that parent (:func:`suggest_subgroup_size`);
 5. optionally stores the result as a new limits version (the daemon puts it in force within
    ``storage.limits_poll`` seconds, no restart) and prints a YAML snippet for the chart.
 
@@ -21,9 +21,11 @@ The statistics here are pure functions of arrays; only :func:`stored_subgroups` 
 from __future__ import annotations
 
 import math
+import sys
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
-from typing import IO
+from typing import IO, TYPE_CHECKING, Final
 
 import numpy as np
 from numpy.typing import NDArray
@@ -32,6 +34,7 @@ from scipy import stats
 from monitor.config import ChartConfig
 from monitor.spc import (
     ConfigError,
+    MonitorError,
     NotEnoughData,
     PhaseOneEstimate,
     SigmaEstimator,
@@ -41,17 +44,24 @@ from monitor.spc import (
 )
 from monitor.store import LimitsRow, Store, SubgroupRow
 
+if TYPE_CHECKING:
+    from monitor.spc.parents import Parent
+
 __all__ = [
     "BaselineResult",
     "NormalityCheck",
     "ParentFit",
+    "SizeRate",
+    "SizeSuggestion",
     "estimate_baseline",
     "normality",
     "parse_moment",
     "print_result",
     "run_baseline",
     "save",
+    "size_lines",
     "stored_subgroups",
+    "suggest_subgroup_size",
     "yaml_snippet",
 ]
 
@@ -100,6 +110,10 @@ class ParentFit:
     candidates: tuple[tuple[str, float], ...]
     """Each fitted family's description and AIC, best first."""
     method: str
+    model: Parent | None = field(default=None, repr=False, compare=False)
+    """The chosen parent itself (for the laws of chart statistics)."""
+    how: str = ""
+    """Why this parent (the daemon's rule for ``parent: auto``: normal within 2 AIC is kept)."""
 
     def to_json(self) -> dict[str, object]:
         """As plain data."""
@@ -111,7 +125,204 @@ class ParentFit:
             "fell_back_to_empirical": self.fell_back,
             "candidates": [{"parent": text, "aic": aic} for text, aic in self.candidates],
             "method": self.method,
+            "how": self.how,
+            "setting": None if self.model is None else _parent_setting(self.model),
         }
+
+
+NOMINAL_LIMIT_SIGMA: Final = 3.0
+CANDIDATE_SIZES: Final = (1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 12, 15, 20, 25)
+"""Subgroup sizes :func:`suggest_subgroup_size` considers when every law of the mean is cheap."""
+COSTLY_CANDIDATE_SIZES: Final = (1, 2, 3, 5, 8, 12, 25)
+"""Fewer sizes for parents whose law of the mean is a numerical convolution (seconds per size)."""
+RATE_TOLERANCE: Final = 0.25
+"""How far (relative) from the nominal false-alarm rate a suggested size may leave the true one."""
+_COSTLY_MEAN_LAWS: Final = frozenset({"lognormal", "weibull"})
+"""Families whose law of the mean :mod:`monitor.spc.laws` builds by convolution, not in closed form."""
+
+
+@dataclass(frozen=True, slots=True)
+class SizeRate:
+    """The true false-alarm rate of normal-theory limits for means of ``n`` readings, per side."""
+
+    n: int
+    lower: float
+    upper: float
+
+    @property
+    def total(self) -> float:
+        """Both sides together."""
+        return self.lower + self.upper
+
+    def to_json(self, nominal: float) -> dict[str, object]:
+        """As plain data, with the rate as a multiple of the nominal one."""
+        return {
+            "n": self.n,
+            "lower": self.lower,
+            "upper": self.upper,
+            "total": self.total,
+            "times_nominal": self.total / nominal,
+        }
+
+
+SIZE_RULE: Final = (
+    "the smallest candidate size from which on the true two-sided false-alarm rate of "
+    "normal-theory limits for the mean stays within the tolerance of the nominal rate"
+)
+
+
+@dataclass(frozen=True, slots=True)
+class SizeSuggestion:
+    """Which subgroup size keeps normal-theory limits for the mean honest under the fitted parent.
+
+    Attributes:
+        parent: the parent model, as text.
+        current: the chart's subgroup size (the usual one where windows vary it).
+        limit_sigma: the width of the limits in sigma of the mean.
+        nominal: the two-sided rate those limits promise for a normal process, 2 P(Z > limit_sigma).
+        tolerance: relative distance from ``nominal`` a suggested size may leave.
+        candidates: the sizes considered, smallest first.
+        rates: every size computed (the current one included), smallest first.
+        suggested: the suggested size, or None when no candidate qualifies (or a law failed).
+        search: ``"every candidate"`` or ``"bisection"`` (see :func:`suggest_subgroup_size`).
+        problem: why the search stopped early, if it did.
+    """
+
+    parent: str
+    current: int
+    limit_sigma: float
+    nominal: float
+    tolerance: float
+    candidates: tuple[int, ...]
+    rates: tuple[SizeRate, ...]
+    suggested: int | None
+    search: str
+    problem: str | None = None
+
+    def rate_at(self, n: int) -> SizeRate | None:
+        """The rate computed for size ``n``, if it was."""
+        return next((r for r in self.rates if r.n == n), None)
+
+    def to_json(self) -> dict[str, object]:
+        """Stable JSON for scripts."""
+        current = self.rate_at(self.current)
+        return {
+            "parent": self.parent,
+            "limit_sigma": self.limit_sigma,
+            "nominal_rate": self.nominal,
+            "tolerance": self.tolerance,
+            "current": self.current,
+            "current_rate": None if current is None else current.to_json(self.nominal),
+            "suggested": self.suggested,
+            "rule": SIZE_RULE,
+            "search": self.search,
+            "candidates": list(self.candidates),
+            "rates": [r.to_json(self.nominal) for r in self.rates],
+            "problem": self.problem,
+        }
+
+
+def suggest_subgroup_size(
+    parent: Parent,
+    current: int,
+    *,
+    limit_sigma: float = NOMINAL_LIMIT_SIGMA,
+    tolerance: float = RATE_TOLERANCE,
+    candidates: Sequence[int] | None = None,
+    progress: Callable[[str], None] | None = None,
+) -> SizeSuggestion:
+    """The true false-alarm rate of normal-theory limits for the mean at each size, and a size to use.
+
+    Limits at ``mean -/+ limit_sigma * sd / sqrt(n)`` promise the two-sided rate
+    ``2 P(Z > limit_sigma)`` (0.0027 at 3 sigma) only when the mean of ``n`` readings is normal.
+    Under the fitted parent the true rate comes from the exact law of the mean
+    (:func:`monitor.spc.laws.true_false_alarm_rate`); as ``n`` grows that law approaches the
+    normal and the rate approaches the promised one. The suggested size is the smallest
+    candidate from which on the rate stays within ``tolerance`` (relative) of the promise;
+    None when even the largest candidate misses it. Probability limits
+    (:func:`monitor.spc.laws.probability_limits` on the law of the mean) hold the promised rate
+    at any size, so a small subgroup with probability limits is the other way out.
+
+    Bounded work: the rate at ``current`` is always computed. For parents whose law of the
+    mean is cheap (normal, gamma, exponential, empirical...) every candidate is computed and
+    the rule applied as written. For lognormal and Weibull parents each size costs seconds, so
+    the candidates are fewer (:data:`COSTLY_CANDIDATE_SIZES`) and the size is found by bisection,
+    which assumes that the distance from the promise shrinks as ``n`` grows: at most
+    ``2 + log2(len(candidates))`` laws are built.
+
+    If a law cannot be computed the search stops: ``suggested`` is None and ``problem`` says why.
+    ``progress``, if given, is called with a short message before each law is built.
+
+    Examples:
+        >>> from monitor.spc.parents import Parent
+        >>> found = suggest_subgroup_size(Parent.of("normal", mean=8.0, sd=0.04), 5)
+        >>> found.suggested, round(found.rate_at(5).total, 4)  # 2 P(Z > 3) at every size
+        (1, 0.0027)
+    """
+    from monitor.spc import laws  # noqa: PLC0415 - the laws load only when a parent is fitted
+
+    if isinstance(current, bool) or not isinstance(current, int) or current < 1:
+        raise ConfigError(f"the current subgroup size must be a positive integer, got {current!r}")
+    if not 0.0 < tolerance < 1.0:
+        raise ConfigError(f"the tolerance must be a fraction in (0, 1), got {tolerance!r}")
+    costly = parent.name in _COSTLY_MEAN_LAWS
+    sizes = tuple(sorted(set(candidates or (COSTLY_CANDIDATE_SIZES if costly else CANDIDATE_SIZES))))
+    if not sizes or sizes[0] < 1:
+        raise ConfigError(f"candidate subgroup sizes must be positive integers, got {candidates!r}")
+    nominal = float(2.0 * stats.norm.sf(limit_sigma))
+    computed: dict[int, SizeRate] = {}
+
+    def rate(n: int) -> SizeRate:
+        if n not in computed:
+            if progress is not None:
+                progress(f"law of the mean of {n} readings under {parent.name}")
+            lower, upper = laws.true_false_alarm_rate(parent, n, limit_sigma=limit_sigma)
+            computed[n] = SizeRate(n, float(lower), float(upper))
+        return computed[n]
+
+    def within(n: int) -> bool:
+        return abs(rate(n).total / nominal - 1.0) <= tolerance
+
+    suggested: int | None = None
+    problem: str | None = None
+    search = "bisection" if costly else "every candidate"
+    at = current
+    try:
+        rate(current)
+        if costly:
+            at = sizes[-1]
+            if within(sizes[-1]):
+                low, high = -1, len(sizes) - 1  # sizes[high] qualifies; sizes[low] does not (or low = -1)
+                while high - low > 1:
+                    middle = (low + high) // 2
+                    at = sizes[middle]
+                    if within(at):
+                        high = middle
+                    else:
+                        low = middle
+                suggested = sizes[high]
+        else:
+            for at in sizes:
+                rate(at)
+            for n in reversed(sizes):
+                if not within(n):
+                    break
+                suggested = n
+    except (ArithmeticError, ValueError, MonitorError) as exc:
+        suggested = None
+        problem = f"the law of the mean of {at} readings could not be computed ({type(exc).__name__}: {exc})"
+    return SizeSuggestion(
+        parent=parent.describe(),
+        current=current,
+        limit_sigma=float(limit_sigma),
+        nominal=nominal,
+        tolerance=float(tolerance),
+        candidates=sizes,
+        rates=tuple(computed[n] for n in sorted(computed)),
+        suggested=suggested,
+        search=search,
+        problem=problem,
+    )
 
 
 @dataclass(slots=True)
@@ -126,8 +337,11 @@ class BaselineResult:
     readings: int
     normality: NormalityCheck | None = None
     parent: ParentFit | None = None
+    size: SizeSuggestion | None = None
     notes: list[str] = field(default_factory=list)
     saved: LimitsRow | None = None
+    parent_record: dict[str, object] | None = None
+    """The fitted parent as the daemon reads it from a stored limits version."""
 
     def excluded(self) -> list[dict[str, object]]:
         """The excluded subgroups with their own numbers, why, and in which round."""
@@ -153,6 +367,8 @@ class BaselineResult:
             "excluded": self.excluded(),
             "normality": None if self.normality is None else self.normality.to_json(),
             "parent": None if self.parent is None else self.parent.to_json(),
+            "parent_record": self.parent_record,
+            "subgroup_size": None if self.size is None else self.size.to_json(),
         }
 
     def to_json(self) -> dict[str, object]:
@@ -172,6 +388,7 @@ class BaselineResult:
             "excluded": self.excluded(),
             "normality": None if self.normality is None else self.normality.to_json(),
             "parent": None if self.parent is None else self.parent.to_json(),
+            "subgroup_size": None if self.size is None else self.size.to_json(),
             "notes": list(self.notes),
             "saved_version": None if self.saved is None else self.saved.version,
             "yaml": yaml_snippet(self),
@@ -223,6 +440,8 @@ def estimate_baseline(
     estimator: SigmaEstimator | None = None,
     exclude: bool | None = None,
     fit: bool = True,
+    suggest: bool = True,
+    progress: Callable[[str], None] | None = None,
 ) -> BaselineResult:
     """Phase I estimate for ``chart`` from ``batch``, with the checks of the readings.
 
@@ -234,6 +453,10 @@ def estimate_baseline(
         estimator: sigma estimator (default: the chart's).
         exclude: iterative exclusion of out-of-control subgroups (default: the chart's plan, else on).
         fit: check normality and fit a parent model (variables charts).
+        suggest: with a fitted parent, the true false-alarm rate of normal-theory limits for
+            the mean at the chart's subgroup size and a suggested size
+            (:func:`suggest_subgroup_size`).
+        progress: called with a short message before each law of the mean is built.
     """
     spec = chart.spec()
     plan = spec.baseline
@@ -284,7 +507,23 @@ def estimate_baseline(
         if kept.shape[0] >= 3:
             result.normality = normality(kept)
         result.parent = _fit(kept, result.notes)
+        model = None if result.parent is None else result.parent.model
+        if model is not None:
+            from monitor.signal_pvalues import parent_record  # noqa: PLC0415
+
+            result.parent_record = parent_record(model, kept if model.name == "empirical" else None)
+        if suggest and model is not None:
+            result.size = suggest_subgroup_size(
+                model, _usual_size(chart, batch), limit_sigma=spec.limit_sigma, progress=progress
+            )
     return result
+
+
+def _usual_size(chart: ChartConfig, batch: SubgroupBatch) -> int:
+    """The chart's subgroup size; for time windows, the median size of the baseline subgroups."""
+    if chart.subgroup.size is not None:
+        return int(chart.subgroup.size)
+    return max(1, round(float(np.median(batch.sizes))))
 
 
 def _fit(readings: NDArray[np.float64], notes: list[str]) -> ParentFit | None:
@@ -293,20 +532,31 @@ def _fit(readings: NDArray[np.float64], notes: list[str]) -> ParentFit | None:
     if readings.shape[0] < EMPIRICAL_MIN_READINGS:
         notes.append(f"no parent model fitted: fewer than {EMPIRICAL_MIN_READINGS} readings")
         return None
+    from monitor.signal_pvalues import settle_fit  # noqa: PLC0415
+
     try:
         report = fit_parent(readings)
     except (ConfigError, ValueError) as exc:
         notes.append(f"no parent model fitted: {exc}")
         return None
+    model, how = settle_fit(report)
     return ParentFit(
-        chosen=report.chosen.describe(),
+        chosen=model.describe(),
         best_family=report.best.name,
         anderson_darling=report.anderson_darling,
         p_value=report.p_value,
         fell_back=report.fell_back,
         candidates=tuple((c.parent.describe(), c.aic) for c in report.candidates),
         method=report.method,
+        model=model,
+        how=how,
     )
+
+
+def _parent_setting(parent: Parent) -> str | None:
+    from monitor.signal_pvalues import parent_setting  # noqa: PLC0415
+
+    return parent_setting(parent)
 
 
 def _number(value: float) -> str:
@@ -335,6 +585,13 @@ def yaml_snippet(result: BaselineResult) -> str:
         head += f" (stored as limits version {result.saved.version})"
     body = f"limits: {{mean: {_number(p.mean)}"
     body += "}" if p.sigma is None else f", sigma: {_number(p.sigma)}}}"
+    model = None if result.parent is None else result.parent.model
+    if model is not None:
+        setting = _parent_setting(model)
+        if setting is None:
+            body += "\nparent: empirical   # the smoothed density of the baseline readings"
+        elif model.name != "normal":
+            body += f'\nparent: "{setting}"   # fitted to the baseline readings'
     return f"{head}\n{body}"
 
 
@@ -435,6 +692,11 @@ def _from_file(
     return batch, [int(i) for i in positions], notes
 
 
+def _say_progress(message: str) -> None:
+    """One line on the terminal, overwritten by the next."""
+    print(f"\r\033[K{message} ...", end="", file=sys.stderr, flush=True)
+
+
 async def run_baseline(
     chart: ChartConfig,
     *,
@@ -464,14 +726,57 @@ async def run_baseline(
         raise NotEnoughData(
             f"baseline of chart {chart.id!r} from {source}", needed=2, have=len(batch), unit="subgroups"
         )
+    progress = _say_progress if sys.stderr.isatty() else None
     result = estimate_baseline(
-        chart, batch, source=source, indices=indices, estimator=estimator, exclude=exclude
+        chart, batch, source=source, indices=indices, estimator=estimator, exclude=exclude, progress=progress
     )
+    if progress is not None:
+        print("\r\033[K", end="", file=sys.stderr, flush=True)
     result.notes[:0] = notes
     if write:
         async with await Store.open(url) as store:
             await save(store, result)
     return result
+
+
+def size_lines(size: SizeSuggestion) -> list[str]:
+    """The subgroup-size suggestion in words: a table of true rates, the suggestion, the way out."""
+    width = f"{size.limit_sigma:g}-sigma"
+    percent = f"{size.tolerance:.0%}"
+    lines = [
+        (
+            f"subgroup size: true false-alarm rate of normal-theory {width} limits for the mean under "
+            f"{size.parent} (promised {size.nominal:.4f} for a normal process)"
+        ),
+        "     n   below LCL   above UCL       total   x promised",
+    ]
+    for r in size.rates:
+        mark = "   <- current size" if r.n == size.current else ""
+        times = r.total / size.nominal
+        lines.append(f"  {r.n:4d}  {r.lower:10.3g}  {r.upper:10.3g}  {r.total:10.3g}  {times:11.2f}{mark}")
+    largest = size.candidates[-1]
+    if size.search == "bisection":
+        lines.append(
+            "  (the law of the mean of this parent is a numerical convolution: only the sizes "
+            "needed were computed, by bisection over " + ", ".join(str(n) for n in size.candidates) + ")"
+        )
+    if size.problem is not None:
+        lines.append(f"no suggestion: {size.problem}")
+    elif size.suggested is None:
+        lines.append(
+            f"no size up to {largest} keeps the rate within {percent} of {size.nominal:.4f}: "
+            "the mean stays too skewed for normal-theory limits"
+        )
+    else:
+        lines.append(
+            f"suggested subgroup size: {size.suggested} (the smallest from which on the rate stays within "
+            f"{percent} of {size.nominal:.4f}; larger subgroups still detect smaller shifts)"
+        )
+    lines.append(
+        "probability limits (quantiles of the law of the mean under this parent) keep the "
+        f"promised {size.nominal:.4f} at any size"
+    )
+    return lines
 
 
 def print_result(result: BaselineResult, out: IO[str]) -> None:
@@ -504,6 +809,9 @@ def print_result(result: BaselineResult, out: IO[str]) -> None:
         say(f"    Anderson-Darling {fit.anderson_darling:.3g}, p = {fit.p_value:.3g} ({fit.method})")
         for text, aic in fit.candidates:
             say(f"    candidate {text}: AIC {aic:.1f}")
+    if result.size is not None:
+        for line in size_lines(result.size):
+            say(f"  {line}")
     for note in result.notes:
         say(f"  note: {note}")
     if result.saved is not None:

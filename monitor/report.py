@@ -5,7 +5,9 @@ A :class:`ChartPicture` holds what one chart plotted, per chart kind and statist
 baseline estimate if the limits came from one, and optionally what a distribution panel
 shows. It is built from the JSON lines of ``monitor replay`` (:func:`pictures_from_replay`)
 or from the store the daemon writes (:func:`pictures_from_store`), and drawn by
-:func:`render_png` or :func:`render_html`.
+:func:`render_png` or :func:`render_html`. Where the readings of the baseline are known (the
+store keeps them; :func:`baseline_readings_from_data` takes them from the replayed file),
+:func:`with_fitted_distribution` fits a parent model to them and adds the distribution panel.
 
 Design choices:
 
@@ -75,7 +77,9 @@ if TYPE_CHECKING:
     from matplotlib.figure import Figure
     from matplotlib.typing import RcKeyType
 
-    from monitor.store import Store
+    from monitor.spc.laws import Law
+    from monitor.spc.parents import Parent
+    from monitor.store import LimitsRow, Store
 
 __all__ = [
     "DPI",
@@ -92,10 +96,12 @@ __all__ = [
     "RuleStyle",
     "Series",
     "add_report_command",
+    "baseline_readings_from_data",
     "cmd_report",
     "draw_figure",
     "figure_size_px",
     "file_stem",
+    "fitted_distribution",
     "html_page",
     "main",
     "pictures_from_replay",
@@ -103,6 +109,7 @@ __all__ = [
     "render_html",
     "render_png",
     "summarize",
+    "with_fitted_distribution",
 ]
 
 FloatArray = NDArray[np.float64]
@@ -190,6 +197,8 @@ class DistributionLaws:
     normal_density: FloatArray
     subgroup_size: int
     readings: FloatArray | None = None
+    law_method: str = ""
+    """How the law of the mean was computed (e.g. ``closed form``), if known."""
 
     def __post_init__(self) -> None:
         pairs = (
@@ -215,6 +224,7 @@ class DistributionLaws:
         normal_density: ArrayLike,
         subgroup_size: int,
         readings: ArrayLike | None = None,
+        law_method: str = "",
     ) -> DistributionLaws:
         """Build from anything array-like (lists, numpy arrays)."""
         return cls(
@@ -226,6 +236,7 @@ class DistributionLaws:
             normal_density=_array(normal_density, "normal_density"),
             subgroup_size=subgroup_size,
             readings=None if readings is None else np.asarray(readings, dtype=np.float64).ravel(),
+            law_method=law_method,
         )
 
     @classmethod
@@ -255,6 +266,115 @@ class DistributionLaws:
             subgroup_size=subgroup_size,
             readings=readings,
         )
+
+
+_TAIL: Final = 1e-4
+"""The distribution panel shows at least the central 1 - 2e-4 of each law."""
+
+
+def _parent_words(parent: Parent) -> str:
+    """A short name of a parent for a legend: ``gamma (shape 7.92, scale 1.56)``."""
+    if parent.name == "empirical":
+        readings = dict(parent.params).get("readings")
+        count = "" if readings is None else f" of {round(readings)} readings"
+        return f"empirical (smoothed{count})"
+    inner = ", ".join(f"{key.replace('_', ' ')} {value:.4g}" for key, value in parent.params)
+    return f"{parent.name} ({inner})"
+
+
+def _law_density(
+    law: Law, x: FloatArray, median: float, step: float, support: tuple[float, float]
+) -> FloatArray:
+    """The density of a law from its CDF below the median and its survival function above.
+
+    The laws hold tail probabilities precisely, not densities, so the density is the difference
+    quotient over ``[x - step, x + step]`` (cut at the ends of the support); the survival
+    function keeps it precise in the upper tail.
+    """
+    a = np.maximum(x - step, support[0])
+    b = np.minimum(x + step, support[1])
+    below = x <= median
+    density = np.empty_like(x)
+    density[below] = (law.cdf(b[below]) - law.cdf(a[below])) / (b[below] - a[below])
+    density[~below] = (law.sf(a[~below]) - law.sf(b[~below])) / (b[~below] - a[~below])
+    return np.maximum(density, 0.0)
+
+
+def fitted_distribution(
+    readings: ArrayLike,
+    subgroup_size: int,
+    *,
+    parent: Parent | None = None,
+    limits: Sequence[float] = (),
+    resolution: int = 400,
+) -> DistributionLaws:
+    """What the distribution panel shows for baseline ``readings`` and means of ``subgroup_size``.
+
+    The parent is fitted to the readings as ``parent: auto`` would fit it
+    (:func:`monitor.signal_pvalues.settle_fit`: normal kept within 2 AIC of the best) unless given.
+    Left: its density over a range holding every reading and the parent's central 1 - 2e-4.
+    Right: the law of the mean of ``subgroup_size`` readings under the parent
+    (:func:`monitor.spc.laws.law_of_mean`) against the normal curve normal theory assumes, with
+    the parent's mean and standard deviation over ``sqrt(subgroup_size)``, over a range holding
+    the central 1 - 2e-4 of both (and ``limits``, within 8 standard deviations of the mean).
+
+    Raises:
+        ReportError: too few readings for a parent model, or its law could not be computed.
+    """
+    from monitor.signal_pvalues import settle_fit  # noqa: PLC0415
+    from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - the laws load only for this panel
+    from monitor.spc.parents import EMPIRICAL_MIN_READINGS, fit_parent  # noqa: PLC0415
+
+    x = np.asarray(readings, dtype=np.float64).ravel()
+    x = x[np.isfinite(x)]
+    if parent is None:
+        if x.size < EMPIRICAL_MIN_READINGS:
+            raise ReportError(
+                f"{x.size} baseline readings: a parent model needs at least {EMPIRICAL_MIN_READINGS}"
+            )
+        try:
+            parent = settle_fit(fit_parent(x))[0]
+        except MonitorError as exc:
+            raise ReportError(f"no parent model fitted: {exc}") from None
+    try:
+        law = law_of_mean(parent, subgroup_size)
+        low_support, high_support = parent.support
+        low = float(parent.ppf(_TAIL))
+        high = float(parent.isf(_TAIL))
+        if x.size:
+            low, high = min(low, float(x.min())), max(high, float(x.max()))
+        low, high = max(low, low_support), min(high, high_support)
+        parent_x = np.linspace(low, high, resolution)
+        parent_density = parent.pdf(parent_x)
+
+        mean, spread = parent.mean(), parent.sd() / math.sqrt(subgroup_size)
+        lows = [float(law.ppf(_TAIL)), mean - 4.0 * spread]
+        highs = [float(law.isf(_TAIL)), mean + 4.0 * spread]
+        for limit in limits:
+            if math.isfinite(limit) and abs(limit - mean) <= 8.0 * spread:
+                lows.append(limit - 0.25 * spread)
+                highs.append(limit + 0.25 * spread)
+        mean_x = np.linspace(max(min(lows), low_support), min(max(highs), high_support), resolution)
+        median = float(law.ppf(0.5))
+        mean_density = _law_density(law, mean_x, median, 1e-3 * spread, parent.support)
+    except (ArithmeticError, ValueError, MonitorError) as exc:
+        raise ReportError(
+            f"the law of the mean of {subgroup_size} under {parent.describe()} could not be computed: {exc}"
+        ) from None
+    normal = np.exp(-0.5 * ((mean_x - mean) / spread) ** 2) / (spread * math.sqrt(2.0 * math.pi))
+    if not (np.isfinite(parent_density).all() and np.isfinite(mean_density).all()):
+        raise ReportError(f"the density of {parent.describe()} is not finite over the readings")
+    return DistributionLaws.from_arrays(
+        _parent_words(parent),
+        parent_x=parent_x,
+        parent_density=parent_density,
+        mean_x=mean_x,
+        mean_density=mean_density,
+        normal_density=normal,
+        subgroup_size=subgroup_size,
+        readings=x if x.size else None,
+        law_method=law.method,
+    )
 
 
 SeriesKey = tuple[ChartKind, Statistic]
@@ -544,12 +664,16 @@ async def pictures_from_store(
     pictures: dict[str, ChartPicture] = {}
     for chart in chart_ids:
         draft = _Draft()
+        uncharted: dict[int, tuple[float, ...]] = {}  # baseline subgroups collected, not charted
+        readings: dict[int, tuple[float, ...]] = {}
         for row in await store.subgroups_for(chart):
             where = f"chart {chart}, subgroup {row.index}"
             time = None if row.end_ms is None else row.end_ms / 1000.0
             kept = getattr(row, "values", None)  # readings, on stores that keep them
-            if not row.points and kept:
-                draft.baseline_readings.extend(float(v) for v in kept)  # an uncharted baseline subgroup
+            if kept:
+                readings[row.index] = tuple(float(v) for v in kept)
+                if not row.points:
+                    uncharted[row.index] = readings[row.index]
             for kind_name, statistics in row.points.items():
                 if not isinstance(statistics, Mapping):
                     raise ReportError(f"{where}: points of {kind_name!r} are not an object")
@@ -576,8 +700,107 @@ async def pictures_from_store(
                     draft.baseline = _baseline_from_state(limits.detail, f"chart {chart}")
                 except ReportError:
                     draft.baseline = None  # limits without the estimate's detail: the note says enough
+        draft.baseline_readings = _stored_baseline_readings(draft.baseline, limits, uncharted, readings)
         pictures[chart] = draft.build(chart, _chart_config(config, chart))
     return pictures
+
+
+def _excluded_numbers(entries: object) -> set[int]:
+    items = entries if isinstance(entries, list) else []
+    return {e["subgroup"] for e in items if isinstance(e, Mapping) and isinstance(e.get("subgroup"), int)}
+
+
+def _stored_baseline_readings(
+    baseline: BaselineSummary | None,
+    limits: LimitsRow | None,
+    uncharted: Mapping[int, tuple[float, ...]],
+    readings: Mapping[int, tuple[float, ...]],
+) -> list[float]:
+    """The readings of the subgroups the limits in force were estimated from, excluded ones left out.
+
+    Limits from the daemon's own Phase I baseline: the subgroups it collected without charting
+    them. Limits stored by ``monitor baseline`` from the stored history: the stored subgroups
+    from the first to the last it used. Otherwise (limits from a file, or none): the uncharted
+    subgroups, if any.
+    """
+    detail = {} if limits is None else limits.detail
+    span = detail.get("subgroups")
+    if (
+        baseline is None
+        and detail.get("by") == "monitor baseline"
+        and detail.get("data") == "stored history"
+        and isinstance(span, list)
+        and len(span) == 2
+        and all(isinstance(i, int) for i in span)
+    ):
+        left_out = _excluded_numbers(detail.get("excluded"))
+        first, last = span
+        chosen = [i for i in sorted(readings) if first <= i <= last and i not in left_out]
+        return [v for i in chosen for v in readings[i]]
+    left_out = set(baseline.excluded) if baseline is not None else set()
+    return [v for i in sorted(uncharted) if i not in left_out for v in uncharted[i]]
+
+
+def _mean_size(picture: ChartPicture, config: ChartConfig | None) -> int | None:
+    """The subgroup size of the plotted means (the most common where it varies); 1 for individuals."""
+    statistics = {key[1] for key in picture.series}
+    if statistics & {Statistic.PROPORTION, Statistic.RATE}:
+        return None
+    means = [p.n for key, s in picture.series.items() if key[1] is Statistic.MEAN for p in s.points]
+    if means:
+        return Counter(means).most_common(1)[0][0]
+    if Statistic.INDIVIDUAL in statistics:
+        return 1
+    if config is not None and config.subgroup.size is not None and config.spec().attribute is None:
+        return int(config.subgroup.size)
+    return None
+
+
+def with_fitted_distribution(
+    picture: ChartPicture, config: ChartConfig | None = None
+) -> tuple[ChartPicture, str | None]:
+    """The picture with a distribution panel fitted to its baseline readings, and why not if it has none.
+
+    Nothing to say (``None``) when the picture has no baseline readings or charts counts (p, u);
+    otherwise a picture without the panel comes back with the reason (too few readings, a law
+    that could not be computed).
+    """
+    if not picture.baseline_readings:
+        return picture, None
+    size = _mean_size(picture, config)
+    if size is None:
+        return picture, None
+    limits = [value for _, value in _last_mean_limits(picture)]
+    try:
+        laws = fitted_distribution(picture.baseline_readings, size, limits=limits)
+    except ReportError as exc:
+        return picture, f"{picture.chart}: no distribution panel: {exc}"
+    return picture.with_distribution(laws), None
+
+
+def baseline_readings_from_data(
+    pictures: Mapping[str, ChartPicture], data: str | Path, config: Config
+) -> dict[str, ChartPicture]:
+    """Give each picture with a baseline the readings of its baseline subgroups from the replayed file.
+
+    The subgroups are formed from ``data`` exactly as the replay formed them; the first
+    ``baseline.subgroups`` of them, less those the estimate left out, are the baseline.
+    """
+    from monitor.replay import chart_subgroups, read_table  # noqa: PLC0415 - pyarrow only for files
+
+    table = read_table(data)
+    out = dict(pictures)
+    for chart, picture in pictures.items():
+        chart_config = _chart_config(config, chart)
+        baseline = picture.baseline
+        if baseline is None or chart_config is None or chart_config.spec().attribute is not None:
+            continue
+        batch, _ = chart_subgroups(table, chart_config)
+        left_out = set(baseline.excluded)
+        kept = [i for i in range(min(baseline.subgroups, len(batch))) if i not in left_out]
+        values = tuple(float(v) for i in kept for v in batch.values[i, : int(batch.sizes[i])])
+        out[chart] = replace(picture, baseline_readings=values)
+    return out
 
 
 # ---------------------------------------------------------------- words
@@ -1368,7 +1591,8 @@ def _distribution(
     _headroom(left)
     left.legend(loc="upper left", **_BOXED_LEGEND)
 
-    right.set_title(f"Mean of {laws.subgroup_size}: exact law and normal curve")
+    what = "Single readings" if laws.subgroup_size == 1 else f"Mean of {laws.subgroup_size}"
+    right.set_title(f"{what}: exact law and normal curve")
     right.plot(
         laws.mean_x, laws.mean_density, color=_POINTS, lw=1.4, gid="mean-law", label="exact law of the mean"
     )
@@ -1474,7 +1698,8 @@ def summarize(picture: ChartPicture) -> list[PanelSummary]:
                     (
                         f"Left: {readings}the fitted parent, {laws.parent_name}.",
                         (
-                            f"Right: the exact law of the mean of {laws.subgroup_size} readings against "
+                            f"Right: the exact law of the mean of {laws.subgroup_size} readings"
+                            f"{f' ({laws.law_method})' if laws.law_method else ''} against "
                             "the normal curve; where they part, normal-theory limits misjudge the "
                             "false-alarm rate."
                         ),
@@ -1648,6 +1873,11 @@ examples:
   monitor report --config config/demo.yaml --replay signals.jsonl --chart press-2/thickness \\
       --out docs/images --format png
   monitor report --config plant.yaml --store --out /tmp/charts --format both
+  monitor report --config config/demo.yaml --replay signals.jsonl --data readings.csv --out report/
+
+The distribution panel (baseline histogram with the fitted parent model; the law of the
+subgroup mean against the normal curve) is drawn for charts whose baseline readings are known:
+from the store, or from the replayed file given with --data.
 
 One file per chart and format is written to --out, named after the chart id with '/' as '-'
 (press-2/thickness -> press-2-thickness.png). The pictures are advisory: statistical evidence
@@ -1684,6 +1914,24 @@ def _report_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", required=True, metavar="DIR", help="directory for the pictures")
     parser.add_argument(
         "--format", choices=["png", "html", "both"], default="png", help="what to write (default: png)"
+    )
+    parser.add_argument(
+        "--data",
+        metavar="FILE",
+        help=(
+            "with --replay: the CSV or Parquet file the replay ran on; its Phase I baseline "
+            "readings feed the distribution panel"
+        ),
+    )
+    parser.add_argument(
+        "--distribution",
+        action=argparse.BooleanOptionalAction,
+        default=True,
+        help=(
+            "draw the distribution panel (baseline histogram, fitted parent, law of the mean) "
+            "where baseline readings are known (default: yes; lognormal and Weibull parents "
+            "take seconds per chart)"
+        ),
     )
     parser.set_defaults(run=cmd_report)
 
@@ -1769,6 +2017,9 @@ def _report(args: argparse.Namespace) -> list[Path]:
     config_path = Path(args.config)
     config = load_config(config_path)
     wanted: list[str] | None = args.chart
+    data: str | None = getattr(args, "data", None)
+    if data is not None and not args.replay:
+        raise ReportError("--data goes with --replay: the store keeps the baseline readings itself")
     if args.replay:
         pictures = _read_replay(Path(args.replay), config)
         where = args.replay
@@ -1785,6 +2036,13 @@ def _report(args: argparse.Namespace) -> list[Path]:
         pictures = {c: pictures[c] for c in wanted}
     if not pictures:
         raise ReportError(f"no charts in {where}")
+    if getattr(args, "distribution", True):
+        if data is not None:
+            pictures = baseline_readings_from_data(pictures, data, config)
+        for chart, picture in pictures.items():
+            pictures[chart], note = with_fitted_distribution(picture, _chart_config(config, chart))
+            if note is not None:
+                print(note, file=sys.stderr)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     formats = ("png", "html") if args.format == "both" else (args.format,)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import base64
+import csv
 import importlib.util
 import io
 import json
@@ -20,7 +21,7 @@ import numpy as np
 import pytest
 from matplotlib.colors import to_hex
 from PIL import Image
-from scipy import stats
+from scipy import integrate, stats
 
 from monitor.config import load_config
 from monitor.replay import replay
@@ -32,8 +33,10 @@ from monitor.report import (
     DistributionLaws,
     ReportError,
     add_report_command,
+    baseline_readings_from_data,
     draw_figure,
     figure_size_px,
+    fitted_distribution,
     html_page,
     main,
     pictures_from_replay,
@@ -41,8 +44,10 @@ from monitor.report import (
     render_html,
     render_png,
     summarize,
+    with_fitted_distribution,
 )
 from monitor.spc import ChartKind, RuleId, Statistic
+from monitor.spc.parents import Parent
 from monitor.store import CommitBatch, LimitsRow, SignalRow, Store, SubgroupRow
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -851,3 +856,170 @@ def test_importing_the_report_module_loads_neither_matplotlib_nor_the_database_l
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60, cwd=ROOT
     )
     assert result.stdout.strip() == "[]"
+
+
+# ---------------------------------------------------------------- the fitted distribution panel
+
+
+def test_a_fitted_distribution_integrates_to_one_and_its_mean_law_is_the_gamma_law():
+    """For a gamma parent the mean of n readings is gamma(n shape, scale / n) (sum of gammas, common
+    practice, no source): the panel's curve matches scipy.stats.gamma; both densities integrate to ~1."""
+    readings = np.random.default_rng(31).gamma(4.0, 2.0, 300)
+    parent = Parent.of("gamma", shape=4.0, scale=2.0)
+    laws = fitted_distribution(readings, 4, parent=parent)
+    shape, scale = parent.param("shape"), parent.param("scale")
+    assert laws.mean_density == pytest.approx(
+        stats.gamma.pdf(laws.mean_x, 4 * shape, scale=scale / 4), abs=1e-6
+    )
+    normal = stats.norm.pdf(laws.mean_x, shape * scale, np.sqrt(shape) * scale / 2)
+    assert laws.normal_density == pytest.approx(normal, rel=1e-9, abs=1e-12)
+    assert laws.parent_density == pytest.approx(stats.gamma.pdf(laws.parent_x, shape, scale=scale), rel=1e-9)
+    for x, y in ((laws.parent_x, laws.parent_density), (laws.mean_x, laws.mean_density)):
+        assert np.trapezoid(y, x) == pytest.approx(1.0, abs=1e-3)
+    assert laws.parent_x.min() <= readings.min()
+    assert laws.parent_x.max() >= readings.max()
+    assert laws.readings is not None
+    assert laws.readings.size == readings.size
+    assert laws.law_method == "closed form"
+
+
+def test_the_panels_law_of_the_mean_of_a_weibull_parent_matches_a_direct_convolution():
+    """The mean of two readings has density 2 * integral f(y) f(2x - y) dy, here by scipy.integrate.quad
+    over scipy's Weibull density: the panel's curve (from laws.law_of_mean) agrees to 1e-4 of its peak,
+    far below what a picture can show."""
+    readings = np.random.default_rng(4).weibull(1.5, 300) * 3.0
+    parent = Parent.of("weibull", shape=1.5, scale=3.0)
+    laws = fitted_distribution(readings, 2, parent=parent)
+    weibull = stats.weibull_min(1.5, scale=3.0)
+    peak = float(laws.mean_density.max())
+    assert laws.mean_x.min() >= 0.0  # the mean of positive readings is positive
+    for i in (0, 1, 2, *range(10, laws.mean_x.size, 37)):
+        x = float(laws.mean_x[i])
+        direct, _ = integrate.quad(
+            lambda y, x=x: weibull.pdf(y) * weibull.pdf(2 * x - y), 0.0, 2 * x, limit=200
+        )
+        assert laws.mean_density[i] == pytest.approx(2.0 * direct, abs=1e-4 * peak)
+    assert np.trapezoid(laws.mean_density, laws.mean_x) == pytest.approx(1.0, abs=1e-3)
+
+
+def test_too_few_baseline_readings_give_no_panel_and_say_why():
+    """A parent model needs 20 readings: fewer leave the picture without the panel and say so."""
+    picture = replace(one_picture(xbar_r_lines(10)), baseline_readings=tuple(np.linspace(7.9, 8.1, 12)))
+    same, note = with_fitted_distribution(picture)
+    assert same.distribution is None
+    assert note is not None
+    assert "12 baseline readings" in note
+    assert with_fitted_distribution(one_picture(xbar_r_lines(10))) == (one_picture(xbar_r_lines(10)), None)
+
+
+def demo_csv_values(path: Path, chart: str) -> list[float]:
+    with path.open(newline="") as handle:
+        return [float(row["value"]) for row in csv.DictReader(handle) if row["chart"] == chart]
+
+
+def test_the_replay_report_with_its_data_draws_the_distribution_panel_of_the_baseline(
+    demo_replay, tmp_path, capsys
+):
+    """`report --replay --data` fits the parent to the replay's Phase I readings (excluded subgroups left out):
+    the histogram counts sum to those readings, and the PNG and HTML both carry the panel."""
+    data = demo_replay.parent / "readings.csv"
+    out = tmp_path / "pictures"
+    chart = "dryer-1/drying-time"  # subgroups of 4, a baseline of 25, skewed drying times
+    argv = ["--config", str(DEMO_CONFIG), "--replay", str(demo_replay), "--chart", chart, "--out", str(out)]
+    assert run_report(*argv, "--data", str(data), "--format", "both") == 0
+    baseline = next(
+        line for line in read_lines(demo_replay) if line["type"] == "baseline" and line["chart"] == chart
+    )
+    left_out = {e["subgroup"] for e in baseline["excluded"]}
+    values = demo_csv_values(data, chart)
+    expected = [v for i in range(25) if i not in left_out for v in values[4 * i : 4 * i + 4]]
+    pictures = baseline_readings_from_data(
+        pictures_from_replay(read_lines(demo_replay), config=load_config(DEMO_CONFIG)),
+        data,
+        load_config(DEMO_CONFIG),
+    )
+    picture, note = with_fitted_distribution(pictures[chart], load_config(DEMO_CONFIG).charts[4])
+    assert note is None
+    assert picture.baseline_readings == pytest.approx(expected)
+    laws = picture.distribution
+    assert laws is not None
+    assert laws.subgroup_size == 4
+    figure = draw_figure(picture)
+    bars = artists(figure, "histogram")
+    counts = [bar.get_height() * bar.get_width() * len(expected) for bar in bars]
+    assert sum(round(c) for c in counts) == len(expected) == 4 * baseline["used"]
+    assert np.allclose(counts, np.round(counts), atol=1e-6)
+    assert np.array_equal(the_line(figure, "mean-law").get_ydata(), laws.mean_density)
+    with Image.open(out / "dryer-1-drying-time.png") as image:
+        assert image.size == figure_size_px(picture)
+        assert image.size[1] > figure_size_px(picture.with_distribution(None))[1]
+    page = (out / "dryer-1-drying-time.html").read_text()
+    assert "<h2>Distribution</h2>" in page
+    assert f"a histogram of {len(expected)} baseline readings" in page
+    # without --data there are no readings, and --no-distribution leaves the panel out on purpose
+    assert run_report(*argv, "--format", "html") == 0
+    assert "<h2>Distribution</h2>" not in (out / "dryer-1-drying-time.html").read_text()
+    assert run_report(*argv, "--data", str(data), "--no-distribution", "--format", "html") == 0
+    assert "<h2>Distribution</h2>" not in (out / "dryer-1-drying-time.html").read_text()
+
+
+def test_data_goes_with_replay_only(tmp_path, capsys):
+    """--data names the file a replay ran on; with --store it is refused in one line."""
+    config = tmp_path / "plant.yaml"
+    config.write_text(
+        "charts:\n  - id: a/b\n    kinds: [individuals_mr]\n    limits: {mean: 1.0, sigma: 0.1}\n"
+    )
+    argv = ("--config", str(config), "--store", "--data", "x.csv", "--out", str(tmp_path))
+    assert run_report(*argv) == 1
+    assert (
+        capsys.readouterr().err
+        == "error: --data goes with --replay: the store keeps the baseline readings itself\n"
+    )
+
+
+async def test_the_store_gives_the_readings_the_limits_came_from(tmp_path):
+    """Uncharted baseline subgroups less the excluded ones; or, for limits set by `monitor baseline`
+    from the stored history, the stored subgroups of its span less its exclusions."""
+    if "values" not in {f.name for f in fields(SubgroupRow)}:
+        pytest.skip("this store does not keep the readings of subgroups")
+    chart = "glaze-7/coat-weight"
+    rng = np.random.default_rng(6)
+    batch = stored_rows(chart, 10)
+    batch.subgroups[:0] = [
+        SubgroupRow(chart, i, None, None, 3, {}, values=tuple(float(v) for v in rng.normal(42.0, 0.5, 3)))
+        for i in range(25)
+    ]
+    detail = dict(batch.limits[0].detail)
+    detail["excluded"] = [
+        {"subgroup": 3, "statistic": "sd", "value": 1.9, "lower": 0.0, "upper": 1.1, "round": 1}
+    ]
+    batch.limits[0] = replace(batch.limits[0], detail=detail)
+    charted = [
+        replace(row, values=tuple(float(v) for v in rng.normal(42.0, 0.5, row.n)))
+        for row in batch.subgroups[25:]
+    ]
+    batch.subgroups[25:] = charted
+    store = await Store.open("sqlite:///" + str(tmp_path / "monitor.db"))
+    try:
+        await store.commit(batch)
+        picture = (await pictures_from_store(store, [chart]))[chart]
+        assert len(picture.baseline_readings) == 3 * 24
+        assert picture.baseline_readings[:3] == pytest.approx(batch.subgroups[0].values)
+        assert picture.baseline_readings[9:12] == pytest.approx(batch.subgroups[4].values)  # 3 left out
+        later = LimitsRow(
+            chart, 2, 42.1, 0.4, "baseline",
+            {"by": "monitor baseline", "data": "stored history", "subgroups": [26, 34],
+             "excluded": [{"subgroup": 28}]},
+            1_772_431_900_000,
+        )  # fmt: skip
+        await store.commit(CommitBatch(limits=[later]))
+        picture = (await pictures_from_store(store, [chart]))[chart]
+    finally:
+        await store.close()
+    expected = [v for row in charted if 26 <= row.index <= 34 and row.index != 28 for v in row.values]
+    assert len(expected) >= 20
+    assert list(picture.baseline_readings) == pytest.approx(expected)
+    with_panel, note = with_fitted_distribution(picture)
+    assert note is None
+    assert with_panel.distribution is not None
+    assert with_panel.distribution.subgroup_size == 4  # the most common size of the charted means
