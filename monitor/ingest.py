@@ -27,13 +27,14 @@ Examples:
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from functools import lru_cache
-from typing import Literal, TypeAlias, TypeVar, get_args
+from typing import Literal, NamedTuple, TypeAlias, TypeVar, get_args
 
 import numpy as np
 import orjson
@@ -144,8 +145,16 @@ class PayloadMapping:
     max_bytes: int = 1_000_000
     max_depth: int = 32
     max_batch: int = 100_000
+    _hash: int = dataclasses.field(default=0, init=False, repr=False, compare=False)
+
+    def __hash__(self) -> int:
+        """Computed once: a mapping is looked up for every message."""
+        return self._hash
 
     def __post_init__(self) -> None:
+        settings = (self.format, self.value, self.timestamp, self.sequence, self.exposure, self.batch)
+        limits = (self.items, self.max_bytes, self.max_depth, self.max_batch)
+        object.__setattr__(self, "_hash", hash((*settings, *limits)))
         if self.format not in ("number", "json"):
             raise ConfigError(f"payload format must be 'number' or 'json', got {self.format!r}")
         if self.batch not in ("none", "array", "columns"):
@@ -185,9 +194,8 @@ class PayloadMapping:
             raise ConfigError("a 'columns' batch names each column: paths cannot be ''")
 
 
-@dataclass(frozen=True, slots=True)
-class Decoded:
-    """One reading taken from a message.
+class Decoded(NamedTuple):
+    """One reading taken from a message (a named tuple: one is made per reading, so it is cheap).
 
     Args:
         value: the measured value (finite).
@@ -355,6 +363,8 @@ class _Plan:
     sequence: _Field | None
     exposure: _Field | None
     items: _Field
+    flat: tuple[str, str | None, str | None, str | None] | None
+    """The keys of value, timestamp, sequence and exposure when each is one key of the reading."""
 
     def extras(self) -> list[_Field]:
         return [f for f in (self.timestamp, self.sequence, self.exposure) if f is not None]
@@ -367,13 +377,15 @@ def _field(path: str) -> _Field:
 @lru_cache(maxsize=256)
 def _plan(mapping: PayloadMapping) -> _Plan:
     """The mapping's paths split once, not once per message."""
-    return _Plan(
-        value=_field(mapping.value),
-        timestamp=None if mapping.timestamp is None else _field(mapping.timestamp),
-        sequence=None if mapping.sequence is None else _field(mapping.sequence),
-        exposure=None if mapping.exposure is None else _field(mapping.exposure),
-        items=_field(mapping.items),
-    )
+    value = _field(mapping.value)
+    timestamp = None if mapping.timestamp is None else _field(mapping.timestamp)
+    sequence = None if mapping.sequence is None else _field(mapping.sequence)
+    exposure = None if mapping.exposure is None else _field(mapping.exposure)
+    fields = (value, timestamp, sequence, exposure)
+    flat = None
+    if all(f is None or len(f.keys) == 1 for f in fields):
+        flat = (value.keys[0], *(None if f is None else f.keys[0] for f in fields[1:]))
+    return _Plan(value, timestamp, sequence, exposure, _field(mapping.items), flat)  # type: ignore[arg-type]
 
 
 def _lookup(node: object, field: _Field, root: str) -> object:
@@ -391,8 +403,71 @@ def _lookup(node: object, field: _Field, root: str) -> object:
     return node
 
 
+_MISSING = object()
+_BIGGEST = 2**53  # integers up to this convert to floats exactly (and never overflow)
+
+
+def _flat(
+    node: dict[str, object],
+    keys: tuple[str, str | None, str | None, str | None],
+    received_at: float,
+    position: int,
+) -> Decoded | None:
+    """The common reading fast: an object whose fields are plain numbers at one key each.
+
+    Returns None for anything else (a string, a missing field, a value out of range, ...): the
+    general path then reads the reading again and says what is wrong, so results and errors
+    are those of :func:`_mapped_general`.
+    """
+    value_key, time_key, sequence_key, exposure_key = keys
+    value = node.get(value_key, _MISSING)
+    kind = type(value)
+    if kind is int and -_BIGGEST <= value <= _BIGGEST:  # type: ignore[operator]
+        value = float(value)  # type: ignore[arg-type]
+    elif kind is not float or value - value != 0.0:  # type: ignore[operator]  # NaN, infinities
+        return None
+    moment = received_at
+    if time_key is not None:
+        raw = node.get(time_key, _MISSING)
+        kind = type(raw)
+        if kind is int and -_BIGGEST <= raw <= _BIGGEST:  # type: ignore[operator]
+            moment = float(raw)  # type: ignore[arg-type]
+        elif kind is float and raw - raw == 0.0:  # type: ignore[operator]
+            moment = raw  # type: ignore[assignment]
+        else:
+            return None
+        if moment > _MILLISECONDS_ABOVE:
+            moment /= 1000.0
+        if not _EARLIEST <= moment < _LATEST:
+            return None
+    sequence = None
+    if sequence_key is not None:
+        sequence = node.get(sequence_key, _MISSING)
+        if type(sequence) is not int:
+            return None
+    exposure = None
+    if exposure_key is not None:
+        exposure = node.get(exposure_key, _MISSING)
+        kind = type(exposure)
+        if kind is int and 0 < exposure <= _BIGGEST:  # type: ignore[operator]
+            exposure = float(exposure)  # type: ignore[arg-type]
+        elif kind is not float or not 0.0 < exposure < math.inf:  # type: ignore[operator]
+            return None
+    return Decoded(value, moment, sequence, exposure, position)  # type: ignore[arg-type]
+
+
 def _mapped(node: object, plan: _Plan, received_at: float, position: int, root: str) -> Decoded:
     """One reading from one JSON value mapped by ``plan``."""
+    keys = plan.flat
+    if keys is not None and type(node) is dict:
+        fast = _flat(node, keys, received_at, position)
+        if fast is not None:
+            return fast
+    return _mapped_general(node, plan, received_at, position, root)
+
+
+def _mapped_general(node: object, plan: _Plan, received_at: float, position: int, root: str) -> Decoded:
+    """One reading from one JSON value mapped by ``plan`` (any paths, any accepted types)."""
     value = _number(_lookup(node, plan.value, root), plan.value.name if plan.value.keys else root)
     time = received_at
     sequence = exposure = None
@@ -412,11 +487,15 @@ def _array(document: object, plan: _Plan, mapping: PayloadMapping, received_at: 
         raise PayloadError("wrong_type", f"{where} is {_describe(items)}, expected an array of readings")
     _check_length(len(items), mapping.max_batch)
     extras = plan.extras()
+    keys = plan.flat
     out: list[Decoded] = []
     position = 0
     try:
         for position, item in enumerate(items):
-            if isinstance(item, dict):
+            if type(item) is dict:
+                fast = None if keys is None else _flat(item, keys, received_at, position)
+                out.append(fast or _mapped_general(item, plan, received_at, position, "the reading"))
+            elif isinstance(item, dict):
                 out.append(_mapped(item, plan, received_at, position, "the reading"))
             else:
                 out.append(_bare(item, extras, received_at, position))

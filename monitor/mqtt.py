@@ -201,20 +201,23 @@ class MqttLink:
                         callback()
                     delay = s.reconnect_initial
                     generation = self._generation
+                    queue = self._queue
                     async for message in client.messages:
                         payload = message.payload
                         self.stats.received += 1
-                        await self._queue.put(
-                            Incoming(
-                                topic=message.topic.value,
-                                payload=bytes(payload),
-                                mid=message.mid,
-                                qos=message.qos,
-                                retain=message.retain,
-                                received_at=time.time(),
-                                generation=generation,
-                            )
+                        incoming = Incoming(
+                            message.topic.value,
+                            payload if type(payload) is bytes else bytes(payload),
+                            message.mid,
+                            message.qos,
+                            message.retain,
+                            time.time(),
+                            generation,
                         )
+                        if queue.full():  # the processor is behind: stop reading from the broker
+                            await queue.put(incoming)
+                        else:
+                            queue.put_nowait(incoming)
             except aiomqtt.MqttError as exc:
                 if self._stop_requested():
                     break

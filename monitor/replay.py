@@ -118,7 +118,6 @@ def _seconds(column: pa.ChunkedArray, path: Path) -> tuple[NDArray[np.float64], 
         return values, np.asarray(column.is_null().to_numpy(zero_copy_only=False))
     if pa.types.is_integer(kind) or pa.types.is_floating(kind):
         values = column.cast(pa.float64()).to_numpy(zero_copy_only=False)
-        values = np.where(np.isnan(values), np.nan, values)
         return values, ~np.isfinite(values)
     if pa.types.is_string(kind) or pa.types.is_large_string(kind):
         texts = column.to_pylist()
@@ -173,7 +172,10 @@ def read_table(path: str | Path) -> ReadingTable:
     rows = table.num_rows
     lines = np.arange(first_line, first_line + rows, dtype=np.int64)
     keys_column = table.column(key_column)
-    encoded = pc.dictionary_encode(keys_column.cast(pa.string())).combine_chunks()
+    if pa.types.is_dictionary(keys_column.type) and pa.types.is_string(keys_column.type.value_type):
+        encoded = keys_column.unify_dictionaries().combine_chunks()  # Parquet keeps it encoded
+    else:
+        encoded = pc.dictionary_encode(keys_column.cast(pa.string())).combine_chunks()
     key_index = np.asarray(encoded.indices.to_numpy(zero_copy_only=False), dtype=np.int64)
     keys = [str(k) for k in encoded.dictionary.to_pylist()]
     key_bad = np.asarray(keys_column.is_null().to_numpy(zero_copy_only=False)) | (key_index < 0)
@@ -207,7 +209,7 @@ def read_table(path: str | Path) -> ReadingTable:
         else:
             reason = "exposure is not a positive number"
         problems.append(RowProblem(int(lines[pos]), reason))
-    good = ~bad
+    good: slice | NDArray[np.bool_] = ~bad if problems else slice(None)  # copies only when rows drop
     labels, label_names = None, []
     if "label" in names:
         encoded_labels = pc.dictionary_encode(
@@ -475,12 +477,20 @@ def _lines(
 ) -> Iterator[dict[str, object]]:
     """Output lines in subgroup order: the points of a subgroup, then its signals."""
     m = len(batch)
-    starts, ends = _iso(batch.start, m), _iso(batch.end, m)
     if result.established is not None:
         yield _estimate_line(chart_id, result.established)
     signals_at: dict[int, list[Signal]] = {}
     for signal in result.signals:
         signals_at.setdefault(signal.subgroup, []).append(signal)
+    if not points:  # only the subgroups with signals: no text nor lookup for the millions of others
+        wanted = np.array(sorted(signals_at), dtype=np.int64) - first
+        starts = _iso(None if batch.start is None else batch.start[wanted], len(wanted))
+        ends = _iso(None if batch.end is None else batch.end[wanted], len(wanted))
+        for k, index in enumerate(sorted(signals_at)):
+            for signal in signals_at[index]:
+                yield _signal_line(chart_id, signal, starts[k], ends[k])
+        return
+    starts, ends = _iso(batch.start, m), _iso(batch.end, m)
     traces = [
         (kind, trace, dict(zip(trace.subgroup.tolist(), range(len(trace)), strict=True)))
         for kind, by_statistic in result.traces.items()
@@ -570,12 +580,16 @@ def _judge(
     if first is None or len(batch) <= first:
         return
     report.labelled = labels is not None
-    subgroup_labels = (
-        _subgroup_labels(batch, times, labels, names) if labels is not None else [""] * len(batch)
-    )
-    quiet = [label.strip().lower() in IN_CONTROL_LABELS for label in subgroup_labels]
+    subgroup_labels: list[str] = []
+    if labels is None:  # every subgroup in control: no list of millions of labels to build
+        quiet = np.ones(len(batch), dtype=bool)
+    else:
+        subgroup_labels = _subgroup_labels(batch, times, labels, names)
+        quiet = np.array(
+            [label.strip().lower() in IN_CONTROL_LABELS for label in subgroup_labels], dtype=bool
+        )
     charted = range(first, len(batch))
-    report.in_control_subgroups = sum(1 for i in charted if quiet[i])
+    report.in_control_subgroups = int(quiet[first:].sum())
     n = int(np.median(batch.sizes)) if len(batch) else 1
     observed: Counter[tuple[str, str, str]] = Counter()
     for signal in result.signals:

