@@ -20,9 +20,11 @@ from __future__ import annotations
 
 import asyncio
 import base64
+import bisect
 import contextlib
 import gc
 import hashlib
+import math
 import os
 import re
 import signal
@@ -228,54 +230,77 @@ def _same_grouping(old: CountSubgrouper | WindowSubgrouper, new: CountSubgrouper
 class SequenceTracker:
     """The sequence numbers seen on one topic, to drop readings sent twice without losing late ones.
 
-    It keeps the highest number seen and the numbers below it not seen yet (within WINDOW of the
-    highest), so a reading that arrives out of order still counts once. A number at or below the
-    highest that is not missing is a duplicate; so is one older than the window. Jumps larger
-    than the window (sequence numbers that are not consecutive counters) are not tracked as gaps.
+    It keeps the highest number seen and the numbers below it not seen yet, as intervals
+    ("gaps"), so a reading that arrives out of order still counts once, however far behind it
+    comes (a broker may redeliver a newer message before older ones after a restart). A number
+    at or below the highest that is in no gap is a duplicate. Gaps further than ``WINDOW``
+    below the highest are forgotten, and only the ``MAX_GAPS`` newest are kept (sequence numbers
+    that are not consecutive counters, such as timestamps, leave a gap at every reading).
 
     Examples:
         >>> tracker = SequenceTracker()
         >>> [tracker.accept(s) for s in (1, 2, 5, 3, 3, 4, 5, 6)]
         [True, True, True, True, False, True, False, True]
+        >>> [tracker.accept(s) for s in (5000, 4000, 4000, 7)]  # far behind, still counted once
+        [True, True, False, True]
     """
 
-    WINDOW = 1024
+    WINDOW = 10_000_000
+    MAX_GAPS = 256
 
     def __init__(self) -> None:
         self.highest: int | None = None
-        self.missing: set[int] = set()
+        self.gaps: list[tuple[int, int]] = []  # disjoint [low, high], ascending
 
     def accept(self, sequence: int) -> bool:
         """True the first time ``sequence`` is seen (within the window)."""
         highest = self.highest
         if highest is None or sequence > highest:
-            if highest is not None and sequence - highest <= self.WINDOW:
-                self.missing.update(range(highest + 1, sequence))
-            else:
-                self.missing.clear()
+            if highest is None:  # numbers below the first one seen have not been seen either
+                self.gaps.append((sequence - self.WINDOW, sequence - 1))
+            elif sequence > highest + 1:
+                self.gaps.append((max(highest + 1, sequence - self.WINDOW), sequence - 1))
             self.highest = sequence
             floor = sequence - self.WINDOW
-            if self.missing and min(self.missing) < floor:
-                self.missing = {s for s in self.missing if s >= floor}
+            if self.gaps and (self.gaps[0][1] < floor or len(self.gaps) > self.MAX_GAPS):
+                kept = [(max(low, floor), high) for low, high in self.gaps if high >= floor]
+                self.gaps = kept[-self.MAX_GAPS :]
             return True
-        if sequence in self.missing:
-            self.missing.discard(sequence)
-            return True
-        return False
+        at = bisect.bisect_right(self.gaps, (sequence, math.inf)) - 1
+        if at < 0:
+            return False
+        low, high = self.gaps[at]
+        if not low <= sequence <= high:
+            return False
+        parts = [(lo, hi) for lo, hi in ((low, sequence - 1), (sequence + 1, high)) if lo <= hi]
+        self.gaps[at : at + 1] = parts
+        return True
 
     def to_state(self) -> dict[str, object]:
         """As plain data."""
-        return {"highest": self.highest, "missing": sorted(self.missing)}
+        return {"highest": self.highest, "gaps": [list(gap) for gap in self.gaps]}
 
     @classmethod
     def from_state(cls, state: Mapping[str, object]) -> SequenceTracker:
-        """Rebuild from :meth:`to_state`."""
+        """Rebuild from :meth:`to_state` (or from the older list of missing numbers)."""
         tracker = cls()
         highest = state.get("highest")
-        missing = state.get("missing")
         tracker.highest = highest if isinstance(highest, int) else None
+        gaps = state.get("gaps")
+        if isinstance(gaps, list):
+            tracker.gaps = [
+                (int(g[0]), int(g[1]))
+                for g in gaps
+                if isinstance(g, list) and len(g) == 2 and all(isinstance(v, int) for v in g) and g[0] <= g[1]
+            ]
+            tracker.gaps.sort()
+        missing = state.get("missing")
         if isinstance(missing, list):
-            tracker.missing = {m for m in missing if isinstance(m, int)}
+            for number in sorted(m for m in missing if isinstance(m, int)):
+                if tracker.gaps and tracker.gaps[-1][1] == number - 1:
+                    tracker.gaps[-1] = (tracker.gaps[-1][0], number)
+                else:
+                    tracker.gaps.append((number, number))
         return tracker
 
 
@@ -292,8 +317,40 @@ class ChartOutput:
     limits: list[LimitsRow] = field(default_factory=list)
 
 
+@dataclass
+class ChangeWatch:
+    """The charts with something to do, so that no pass of the daemon visits every chart.
+
+    ``dirty``: a checkpoint to commit; ``status``: a retained state to publish; ``timed``:
+    charts that must be visited as time passes (time windows, a parent being fitted).
+    """
+
+    dirty: set[ChartRuntime] = field(default_factory=set)
+    status: set[ChartRuntime] = field(default_factory=set)
+    timed: set[ChartRuntime] = field(default_factory=set)
+
+    def register(self, runtime: ChartRuntime) -> None:
+        """Watch this chart from now on (what it already has to do included)."""
+        runtime.watch = self
+        if runtime.dirty:
+            self.dirty.add(runtime)
+        if runtime.status_dirty:
+            self.status.add(runtime)
+        if runtime.needs_time:
+            self.timed.add(runtime)
+
+    def forget(self, runtime: ChartRuntime) -> None:
+        """Stop watching a chart that was removed (its pending checkpoint is still committed)."""
+        self.status.discard(runtime)
+        self.timed.discard(runtime)
+
+
 class ChartRuntime:
     """Everything the daemon keeps for one chart: subgroup former, chart set, alert tracker."""
+
+    watch: ChangeWatch | None = None
+    _dirty = False
+    _status_dirty = False
 
     def __init__(
         self,
@@ -329,6 +386,37 @@ class ChartRuntime:
         self.dirty = True
         self.status_dirty = True
         self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+
+    @property
+    def dirty(self) -> bool:
+        """Whether the chart has a checkpoint to commit."""
+        return self._dirty
+
+    @dirty.setter
+    def dirty(self, value: bool) -> None:
+        self._dirty = value
+        if value and self.watch is not None:
+            self.watch.dirty.add(self)
+
+    @property
+    def status_dirty(self) -> bool:
+        """Whether the chart's retained state must be published again."""
+        return self._status_dirty
+
+    @status_dirty.setter
+    def status_dirty(self, value: bool) -> None:
+        self._status_dirty = value
+        if value and self.watch is not None:
+            self.watch.status.add(self)
+
+    @property
+    def needs_time(self) -> bool:
+        """Whether the chart must be visited as time passes (time windows, a parent being fitted)."""
+        return isinstance(self.grouper, WindowSubgrouper) or self.p_values.sample is not None
+
+    def _watch_time(self) -> None:
+        if self.watch is not None and self.needs_time:
+            self.watch.timed.add(self)
 
     @property
     def typical_n(self) -> int:
@@ -416,6 +504,7 @@ class ChartRuntime:
         if isinstance(parent_state, dict):
             self.p_values.restore(parent_state)
         self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+        self._watch_time()
         self.dirty = bool(notes)
         return notes
 
@@ -602,6 +691,7 @@ class ChartRuntime:
         sample = [v for i, s in enumerate(baseline) if first + i not in excluded for v in s.values]
         self.p_values.fit(sample)
         self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+        self._watch_time()
 
     def _context(self, signal_: Signal, subgroup: Subgroup) -> SignalContext:
         n = subgroup.n
@@ -742,6 +832,7 @@ class Daemon:
         self.tick = tick
         self.stats = DaemonStats()
         self.runtimes: dict[str, ChartRuntime] = {}
+        self.watch = ChangeWatch()
         self.guard = RedeliveryGuard()
         self.store: Store | None = None
         self.link: MqttLink | None = None
@@ -811,6 +902,7 @@ class Daemon:
             runtime = ChartRuntime(chart_id, template, self.alert_settings, first_index=next_index)
             runtime.limits_version = version
         self.runtimes[chart_id] = runtime
+        self.watch.register(runtime)
         self._sync_limits(runtime)
         return runtime
 
@@ -1030,7 +1122,7 @@ class Daemon:
             return False
         for message in pending.messages:
             self.guard.remember(message)
-        checkpoints = {rt.chart_id: rt.to_state() for rt in self.runtimes.values() if rt.dirty}
+        checkpoints = {rt.chart_id: rt.to_state() for rt in self.watch.dirty}
         link_state = self.guard.checkpoint()
         link_state["subscriptions"] = list(self.subscriptions)
         checkpoints[_LINK_CHECKPOINT + self.broker.client_id] = link_state
@@ -1068,15 +1160,16 @@ class Daemon:
             self.metrics.count_signal(row.chart, row.rule)
         for alert in out.alerts:
             self.metrics.count_alert(alert.chart_id, alert.kind.value)
-        for runtime in self.runtimes.values():
+        for runtime in self.watch.dirty:
             runtime.dirty = False
+        self.watch.dirty.clear()
         for message in pending.messages:
             link.ack(message)
         self.stats.signals += len(out.signals)
         self.stats.alerts += len(out.alerts)
         for alert in out.alerts:
             _log.info("alert_raised", chart=alert.chart_id, alert=alert.id, kind=alert.kind.value)
-        if out.alerts or any(rt.status_dirty for rt in self.runtimes.values()):
+        if out.alerts or self.watch.status:
             self._publish_wake.set()
         return True
 
@@ -1105,8 +1198,10 @@ class Daemon:
                 self.handle(message, pending)
             now = time.time()
             fitted = False
-            for runtime in list(self.runtimes.values()):
+            for runtime in list(self.watch.timed):
                 fitted = runtime.advance(now, pending.output) or fitted
+                if not runtime.needs_time:
+                    self.watch.timed.discard(runtime)
             adopted = fitted  # a parent fitted to a baseline is checkpointed at once
             if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
                 adopted = await self._refresh_limits(self.store)
@@ -1163,8 +1258,9 @@ class Daemon:
             self._dead_letters.popleft()
             self.stats.dead_letters += 1
         now_ms = _now_ms()
-        for runtime in list(self.runtimes.values()):
+        for runtime in sorted(self.watch.status, key=lambda rt: rt.chart_id):
             if not runtime.status_dirty:
+                self.watch.status.discard(runtime)
                 continue
             _, status_topic, _ = topics(self.alert_settings, runtime.chart_id)
             try:
@@ -1172,6 +1268,7 @@ class Daemon:
             except PublishError:
                 break
             runtime.status_dirty = False
+            self.watch.status.discard(runtime)
 
     # -- life cycle
 
@@ -1357,12 +1454,17 @@ class Daemon:
         for chart_id, runtime in list(self.runtimes.items()):
             template = self.templates.get(runtime.config.id)
             if template is None or not self.owns(chart_id):
-                del self.runtimes[chart_id]  # its checkpoint stays stored
+                self.watch.forget(self.runtimes.pop(chart_id))  # its checkpoint stays stored
                 removed.append(chart_id)
             elif template != runtime.config:
                 fresh = ChartRuntime(chart_id, template, self.alert_settings)
                 notes = fresh.restore(runtime.to_state())
+                if runtime.dirty:  # what the old one had not committed yet is the new one's to commit
+                    fresh.dirty = True
+                self.watch.forget(runtime)
+                self.watch.dirty.discard(runtime)
                 self.runtimes[chart_id] = fresh
+                self.watch.register(fresh)
                 changed.append(chart_id)
                 for note in notes:
                     _log.warning("chart_reconfigured", chart=chart_id, reason=note)

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import json
+
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.alerts import AlertSettings
 from monitor.config import load_config_text
-from monitor.daemon import ChartOutput, ChartRuntime
+from monitor.daemon import ChartOutput, ChartRuntime, SequenceTracker
 from monitor.spc import Reading
 from monitor.store import LimitsRow
 
@@ -80,3 +84,41 @@ def test_adopting_a_stored_version_charts_the_next_subgroup_against_it():
     assert out.signals == []
     assert rt.limits_version == 2
     assert rt.to_state()["limits_version"] == 2
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.lists(st.integers(min_value=0, max_value=400), min_size=1, max_size=300),
+    st.randoms(use_true_random=False),
+)
+def test_sequence_numbers_count_once_in_any_order_and_across_a_checkpoint(numbers, rng):
+    """Every distinct sequence number is accepted exactly once, however late it comes.
+
+    The reference is a plain set of the numbers seen (common practice, no source); the stream
+    is cut at a random point and continued from the tracker's checkpoint.
+    """
+    cut = rng.randint(0, len(numbers))
+    tracker = SequenceTracker()
+    accepted = [tracker.accept(n) for n in numbers[:cut]]
+    tracker = SequenceTracker.from_state(json.loads(json.dumps(tracker.to_state())))
+    accepted += [tracker.accept(n) for n in numbers[cut:]]
+    seen: set[int] = set()
+    expected = []
+    for n in numbers:
+        expected.append(n not in seen)
+        seen.add(n)
+    assert accepted == expected
+
+
+def test_a_redelivered_newer_message_does_not_hide_older_readings_far_behind():
+    """After a restart a broker may send a newer message first; the older ones still count."""
+    tracker = SequenceTracker()
+    assert all(tracker.accept(n) for n in range(1, 2951))
+    assert tracker.accept(4000)
+    assert all(tracker.accept(n) for n in range(2951, 4000))
+    assert not any(tracker.accept(n) for n in range(1, 4001))
+
+
+def test_a_checkpoint_of_the_older_form_is_read():
+    tracker = SequenceTracker.from_state({"highest": 10, "missing": [3, 4, 7]})
+    assert [tracker.accept(n) for n in (3, 4, 5, 7, 7, 11)] == [True, True, False, True, False, True]
