@@ -49,12 +49,11 @@ from monitor.spc import (
     SigmaEstimator,
     WindowSubgrouper,
 )
+from monitor.spc.exact_scale import ExactScale
 from monitor.topics import overlaps
 
 if TYPE_CHECKING:
     from monitor.signal_pvalues import ParentChoice
-
-from monitor.spc.exact_scale import ExactScale
 
 __all__ = [
     "ChartConfig",
