@@ -4,14 +4,14 @@ Sources named beside each check:
 
 * Champ, C. W. and Woodall, W. H. (1987), "Exact results for Shewhart control charts with
   supplementary runs rules", *Technometrics* 29: the four Western Electric rules together,
-  in-control ARL 91.75 (listed in /work/shared/REFERENCES.md); the rule pairs (225.44, 166.05,
+  in-control ARL 91.75 (the published table); the rule pairs (225.44, 166.05,
   152.73) are from memory of the same paper's table.
 * Montgomery and Runger, *Applied Statistics and Probability for Engineers*, table "Average Run
   Lengths for a CUSUM Control Chart with K = 1/2" (two-sided; also in Montgomery's *Introduction
   to Statistical Quality Control*, CUSUM chapter): h = 4 and h = 5 in control and at one sigma are
-  listed in REFERENCES.md; the other shifts are from memory.
+  the published values; the other shifts are from memory.
 * Lucas, J. M. and Saccucci, M. S. (1990), *Technometrics* 32, as tabulated in Montgomery's EWMA
-  chapter: lambda = 0.10, L = 2.814 gives 500 in control (REFERENCES.md); the other rows are
+  chapter: lambda = 0.10, L = 2.814 gives 500 in control (the published table); the other rows are
   from memory.
 * Lucas, J. M. and Crosier, R. B. (1982), "Fast initial response for CUSUM quality-control
   schemes", *Technometrics* 24: k = 0.5, h = 5 with a head start of h/2 gives 430 in control
@@ -165,7 +165,7 @@ def two_sided_cusum_run_lengths(k, h, runs, seed, shift=0.0):
 
 
 def test_the_three_sigma_point_rule_alone_has_an_in_control_arl_of_370_4():
-    """One point beyond 3 sigma alone: ARL 1/0.0026998 = 370.4 (REFERENCES.md, exact formula)."""
+    """One point beyond 3 sigma alone: ARL 1/0.0026998 = 370.4 (exact formula)."""
     result = shewhart_arl([BEYOND])
     assert result.method == "closed form"
     assert round(result.arl, 1) == 370.4
@@ -173,7 +173,7 @@ def test_the_three_sigma_point_rule_alone_has_an_in_control_arl_of_370_4():
 
 
 def test_the_point_rule_catches_a_one_sigma_shift_in_43_89_points_on_average():
-    """With the mean shifted by 1 sigma: ARL 43.89 (REFERENCES.md, exact formula)."""
+    """With the mean shifted by 1 sigma: ARL 43.89 (exact formula)."""
     result = shewhart_arl([BEYOND], shift=1.0)
     assert round(result.arl, 2) == 43.89
     p = special.ndtr(-2.0) + special.ndtr(-4.0)
@@ -374,10 +374,10 @@ def test_a_law_that_never_reaches_a_zone_gives_an_infinite_arl():
 
 CUSUM_TABLE = [
     # (h, shift, printed ARL): Montgomery and Runger, two-sided CUSUM with K = 1/2
-    (4.0, 0.0, "168"),  # REFERENCES.md
-    (4.0, 1.0, "8.38"),  # REFERENCES.md
-    (5.0, 0.0, "465"),  # REFERENCES.md
-    (5.0, 1.0, "10.4"),  # REFERENCES.md
+    (4.0, 0.0, "168"),  # the published table
+    (4.0, 1.0, "8.38"),  # the published table
+    (5.0, 0.0, "465"),  # the published table
+    (5.0, 1.0, "10.4"),  # the published table
     (4.0, 0.25, "74.2"),  # value from memory
     (4.0, 0.5, "26.6"),  # value from memory
     (4.0, 0.75, "13.3"),  # value from memory
@@ -478,7 +478,7 @@ def test_cusum_chain_error_estimate_covers_a_much_finer_chain():
 
 EWMA_TABLE = [
     # (lambda, L, shift, printed ARL): Lucas and Saccucci (1990) as tabulated by Montgomery
-    (0.10, 2.814, 0.0, "500"),  # REFERENCES.md
+    (0.10, 2.814, 0.0, "500"),  # the published table
     (0.10, 2.814, 0.5, "31.3"),  # value from memory
     (0.10, 2.814, 1.0, "10.3"),  # value from memory
     (0.10, 2.814, 2.0, "4.4"),  # value from memory
@@ -551,12 +551,12 @@ def test_ewma_chain_error_estimate_covers_a_much_finer_chain():
 
 
 def test_ewma_width_recovers_the_tabulated_l():
-    """L for lambda = 0.1 and ARL0 = 500 is 2.814 (Lucas and Saccucci 1990, REFERENCES.md)."""
+    """L for lambda = 0.1 and ARL0 = 500 is 2.814 (Lucas and Saccucci 1990)."""
     assert ewma_width(0.1, 500.0) == pytest.approx(2.814, abs=0.0005)
 
 
 def test_cusum_decision_interval_recovers_h_five():
-    """h for k = 0.5 and two-sided ARL0 465 is 5 (Montgomery and Runger table, REFERENCES.md)."""
+    """h for k = 0.5 and two-sided ARL0 465 is 5 (Montgomery and Runger table)."""
     assert cusum_decision_interval(0.5, 465.0) == pytest.approx(5.0, abs=0.005)
 
 
