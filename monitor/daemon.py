@@ -386,6 +386,8 @@ class ChartRuntime:
         self.dirty = True
         self.status_dirty = True
         self.p_values.prepare(self.chart_set.parameters, self.typical_n)
+        if self.spec.exact_scale is not None:  # build the exact law now, not at the first subgroup
+            self.spec.exact_scale.lines(self.typical_n, self.spec.limit_sigma)
 
     @property
     def dirty(self) -> bool:

@@ -15,8 +15,6 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-import numpy as np
-from numpy.typing import NDArray
 from scipy import special
 
 from monitor.config import ChartConfig
@@ -26,8 +24,6 @@ from monitor.spc.charts._math import range_limits, sd_limits
 from monitor.spc.constants import range_cdf
 
 __all__ = ["ChartBudget", "PanelRunLength", "chart_budget", "spread_rate"]
-
-FloatArray = NDArray[np.float64]
 
 SECONDS_PER_DAY = 86_400.0
 SHIFT_HOURS = 8.0
@@ -84,18 +80,10 @@ def _point_law(chart: ChartConfig, n: int) -> tuple[ZCdf, str]:
     choice = chart.parent_choice()
     if choice.parent is None:
         return normal_cdf, f"normal ({chart.parent} is fitted to the baseline at run time)"
-    from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - only for charts with a parent
+    from monitor.spc.laws import standardized_mean_cdf  # noqa: PLC0415 - only for charts with a parent
 
-    parent = choice.parent
-    law = law_of_mean(parent, n)
-    limits = chart.limits
-    mean = parent.mean() if limits.mean is None else limits.mean
-    sigma = parent.sd() if limits.sigma is None else limits.sigma
-    spread = sigma / math.sqrt(n)
-
-    def cdf(z: FloatArray) -> FloatArray:
-        return law.cdf(mean + np.asarray(z, dtype=np.float64) * spread)
-
+    parent, limits = choice.parent, chart.limits
+    cdf = standardized_mean_cdf(parent, n, mean=limits.mean, sd=limits.sigma)
     return cdf, parent.describe() + (
         " (probability limits on the mean panel)" if chart.probability_limits else ""
     )

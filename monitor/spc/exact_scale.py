@@ -27,6 +27,7 @@ Examples:
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -52,12 +53,12 @@ class ExactScale:
         parent: the in-control model of single readings (an analytic family; empirical
             parents are not written into chart state).
 
-    Laws are built on first use per subgroup size and kept (the same parent in another chart
-    builds its own; build time is milliseconds for closed forms, up to seconds for a lognormal
-    convolution).
+    Laws are built on first use per parent and subgroup size and shared by every scale of that
+    parent (milliseconds for closed forms, up to a second for a lognormal convolution: warm
+    them at start-up with :meth:`lines`).
     """
 
-    __slots__ = ("_laws", "_lines", "parent")
+    __slots__ = ("_lines", "parent")
 
     def __init__(self, parent: Parent) -> None:
         if not isinstance(parent, Parent):
@@ -65,7 +66,6 @@ class ExactScale:
         if parent.name == "empirical":
             raise ConfigError("probability limits need an analytic parent model (NAME:key=value)")
         self.parent = parent
-        self._laws: dict[int, Law] = {}
         self._lines: dict[tuple[int, float], tuple[float, float, float]] = {}
 
     def __eq__(self, other: object) -> bool:
@@ -81,12 +81,7 @@ class ExactScale:
         return f"ExactScale({self.parent.describe()})"
 
     def _law(self, n: int) -> Law:
-        law = self._laws.get(n)
-        if law is None:
-            from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - loaded only when used
-
-            law = self._laws[n] = law_of_mean(self.parent, n)
-        return law
+        return _mean_law(self.parent, n)
 
     def z(self, x: float, n: int) -> float:
         """The normal score of one subgroup mean of ``n`` readings."""
@@ -140,3 +135,10 @@ class ExactScale:
             raise ConfigError(f"not an exact scale: {dict(state)!r}")
         values = tuple((str(k), float(v)) for k, v in params.items() if isinstance(v, int | float))
         return cls(Parent(name, values))
+
+
+@lru_cache(maxsize=256)
+def _mean_law(parent: Parent, n: int) -> Law:
+    from monitor.spc.laws import law_of_mean  # noqa: PLC0415 - loaded only when used
+
+    return law_of_mean(parent, n)

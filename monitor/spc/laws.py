@@ -1046,11 +1046,17 @@ def true_false_alarm_rate(parent: Parent, n: int, *, limit_sigma: float = 3.0) -
 
 
 def standardized_mean_cdf(
-    parent: Parent, n: int, *, shift: float = 0.0
+    parent: Parent,
+    n: int,
+    *,
+    shift: float = 0.0,
+    mean: float | None = None,
+    sd: float | None = None,
 ) -> Callable[[FloatArray], FloatArray]:
     """CDF of ``z = (xbar - mean) / (sd / sqrt n)`` when the process mean has moved by ``shift`` sds.
 
-    ``mean`` and ``sd`` are the parent's (in-control) values; ``shift`` is in sds of single
+    ``mean`` and ``sd`` are the parent's (in-control) values unless given (a chart's standard
+    values, which it standardizes with); ``shift`` is in sds of single
     readings, so the standardized point moves by ``shift * sqrt(n)``. The shape of the law is
     kept (a pure location shift of the process). This is the input the run-length chains of
     :mod:`monitor.spc.arl` take.
@@ -1065,11 +1071,13 @@ def standardized_mean_cdf(
     n = _count("n (subgroup size)", n, 1)
     move = _number("shift", shift)
     law = _DEFAULT_CACHE.mean(parent, n)
-    mean, scale = parent.mean(), parent.sd() / math.sqrt(n)
-    offset = move * parent.sd()
+    center = parent.mean() if mean is None else _number("mean", mean)
+    spread = parent.sd() if sd is None else _number("sd", sd)
+    scale = spread / math.sqrt(n)
+    offset = move * spread
 
     def cdf(z: FloatArray) -> FloatArray:
-        return law.cdf(mean + np.asarray(z, dtype=np.float64) * scale - offset)
+        return law.cdf(center + np.asarray(z, dtype=np.float64) * scale - offset)
 
     return cdf
 
