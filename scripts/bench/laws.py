@@ -53,8 +53,20 @@ for _ in range(repeats):
     t0 = time.perf_counter()
     build(parent, n)
     again.append(time.perf_counter() - t0)
+# a new parent in a warm process (the daemon's case: another chart, another baseline)
+fresh = []
+for k in range(1, 6):
+    if which == "empirical":
+        other = empirical(np.random.default_rng(4 + k).gamma(4.0, 4.0, 500))
+    else:
+        other = parse_parent(which)
+        other = type(other).of(other.name, **{key: value * (1.0 + 0.01 * k) for key, value in other.params})
+    t0 = time.perf_counter()
+    build(other, n)
+    fresh.append(time.perf_counter() - t0)
 out = {"method": law.method, "cold": cold, "again": statistics.median(again),
-       "error_bound": law.error_bound, "floor": getattr(law, "tail_floor", 0.0)}
+       "fresh": statistics.median(fresh), "error_bound": law.error_bound,
+       "floor": getattr(law, "tail_floor", 0.0)}
 if kind == "mean":
     mean, sd = parent.mean(), parent.sd()
     chart = XbarRChart(mean=mean, sigma=sd)
@@ -150,7 +162,8 @@ def _rows(repeats: int) -> tuple[list[_Row], list[str]]:
             _Row(
                 "laws",
                 f"{case} ({t['method']})",
-                f"cold {1e3 * t['cold']:.1f} ms, again {1e3 * t['again']:.1f} ms",
+                f"cold {1e3 * t['cold']:.1f} ms, again {1e3 * t['again']:.1f} ms, "
+                f"new parent {1e3 * t['fresh']:.1f} ms",
                 "",
                 "",
                 "",
@@ -225,7 +238,10 @@ def main() -> None:
     print()
     for text in notes:
         print(f"  {text}")
-    print(f"\n(again: median of {args.repeats} builds after the first; each case in its own process)")
+    print(
+        f"\n(again: median of {args.repeats} builds after the first; new parent: median of 5 builds "
+        "for slightly different parents in the same warm process; each case in its own process)"
+    )
 
 
 if __name__ == "__main__":
