@@ -20,8 +20,25 @@ integrated exactly: given the first n - 1 readings (mean m, sum of squares SS),
 
     P(S <= s | ...) = F(m + d) - F(m - d),   d = sqrt(n ((n - 1) s^2 - SS) / (n - 1))
 
-(0 when ``(n - 1) s^2 < SS``). The error is estimated from independent scramblings (three
-standard errors of their mean).
+(0 when ``(n - 1) s^2 < SS``). Draws from the parent give the body. The tails come from
+importance sampling: proposals that favour small or large spreads, each a defensive mixture
+with the parent (a fifth of the draws from the parent, so no weight exceeds 5), weighted by the
+exact likelihood ratio:
+
+* small spreads: the readings' mean from the parent and their deviations uniform in a ball of
+  radius r (in the (n - 2)-dimensional space of deviations summing to zero); used for s up to
+  r, where the ball holds the whole event S <= s, and down to the next ball;
+* large spreads of a bounded parent (uniform, triangular, empirical): readings from a
+  piecewise-constant density proportional to ``f(x) exp(a z^2)`` (z = -1 and 1 at the ends);
+* large spreads of a positive parent (lognormal, gamma, Weibull): readings spread by a power
+  about the median, and (heavy tails: a wide spread mostly comes from one large reading) one
+  reading drawn beyond the parent's upper 10^-k quantile, used where any subgroup that wide
+  needs a reading that large.
+
+The error of each estimate is estimated from independent scramblings (three standard errors of
+their mean); per point and tail the most precise estimate is kept, among the sources whose
+draws reach that tail with their first n - 1 readings alone often enough (else the scatter of
+the estimate misses what it never drew). Values are kept to 10 % (three standard errors).
 
 Sums of positive readings (lognormal, Weibull; gamma too, to check the method against its closed
 form), by convolution in x. A level is the law of a sum of k readings: one reading in closed
@@ -179,62 +196,314 @@ class RangeIntegral:
             return np.log(np.clip(cdf, 0.0, 1.0)), np.log(np.clip(sf, 0.0, 1.0)), pdf, relative
 
 
-class SdSimulation:
-    """The law of the sample sd of ``n >= 3`` readings by conditional randomized QMC."""
+_DEFENSIVE: Final = 0.2
+"""Share of the parent itself in every importance-sampling proposal (weights stay below 5)."""
+_BALL_TOP: Final = 0.7
+"""The largest ball of small spreads (radius per reading, in sd), for the lower tail."""
+_BALL_DEPTH: Final = 1e-12
+"""Balls shrink until ``radius^(n - 1)`` (about the lower tail there) falls below this."""
+_COVERED: Final = 0.001
+"""A source's tail estimate at s counts only if this share of its draws reach that tail alone."""
+_SPREAD_TILTS: Final = (0.5, 1.0, 1.7, 2.6, 3.8, 5.5, 8.0, 11.5, 16.5, 24.0)
+"""Strengths a of the tilts exp(a z^2) toward both ends of a bounded parent (z = -1 and 1 at the
+ends), for the upper tail."""
+_SPREAD_POWERS: Final = (1.2, 1.45, 1.75, 2.1, 2.5, 3.0, 3.6)
+"""Powers c of x = m (y / m)^c spreading positive parents, for the upper tail."""
+_EXCEEDANCES: Final = tuple(10.0**-k for k in range(1, 15))
+"""Upper tail probabilities beyond which one reading is drawn, for positive parents' upper tail."""
+
+
+class _Draws:
+    """The first n - 1 readings of a proposal: their mean, sum of squares and log weight."""
 
     def __init__(
-        self, parent: Parent, n: int, *, points: int = 4096, replicates: int = 8, seed: int = 20261
+        self, x: FloatArray, log_weight: FloatArray, replica: NDArray[np.int64], proposed: NDArray[np.bool_]
+    ) -> None:
+        kept = np.isfinite(log_weight)  # zero weight: a reading outside the parent's support
+        x = x[kept]
+        self.mean = x.mean(axis=1)
+        self.ss = ((x - self.mean[:, None]) ** 2).sum(axis=1)
+        self.weight = np.exp(log_weight[kept])
+        self.proposed = proposed[kept]
+        replica = replica[kept]
+        self.replicates = int(replica.max()) + 1 if replica.shape[0] else 0
+        # draws are in replicate order: each replicate's slice starts at its offset
+        self.offsets = np.searchsorted(replica, np.arange(self.replicates))
+        self.totals = np.bincount(replica, minlength=self.replicates).astype(np.float64)
+
+
+class SdSimulation:
+    """The law of the sample sd of ``n >= 3`` readings by conditional randomized QMC.
+
+    The first n - 1 readings are drawn from the parent (the body) and from proposals that favour
+    small or large spreads (the tails), each a defensive mixture with the parent, weighted by
+    the likelihood ratio; the last reading is integrated exactly. Every estimate's error comes
+    from independent scramblings; per point and tail the estimate with the smallest is kept.
+    """
+
+    def __init__(
+        self,
+        parent: Parent,
+        n: int,
+        *,
+        points: int = 4096,
+        replicates: int = 8,
+        seed: int = 20261,
+        rung_points: int = 2048,
     ) -> None:
         self.parent = parent
         self.n = n
         self.replicates = replicates
-        means, squares = [], []
-        for k in range(replicates):
-            u = qmc.Sobol(d=n - 1, scramble=True, rng=np.random.default_rng(seed + k)).random(points)
-            u = np.clip(u, 1e-300, 1.0 - 1e-16)
-            x = np.where(u < 0.5, parent.ppf(u), parent.isf(1.0 - u))
-            m = x.mean(axis=1)
-            means.append(m)
-            squares.append(((x - m[:, None]) ** 2).sum(axis=1))
-        self.mean = np.concatenate(means)
-        self.ss = np.concatenate(squares)
         self.points = points
+        self._seed = seed
+        self.sd = parent.sd()
+        self.plain = self._draw(points, seed, None)
+        low, high = parent.support
+        half = (n - 1) // 2
+        # the largest sum of squares of n - 1 readings (half at each end of a bounded support)
+        self._widest_first = (high - low) ** 2 * half * (n - 1 - half) / (n - 1)
+        self.rungs: list[tuple[float, float, _Draws]] = []
+        for k, proposal in enumerate(self._proposals()):
+            draws = self._draw(rung_points, seed + 1000 * (k + 1), proposal)
+            if draws.ss.shape[0] < 16 * replicates:
+                continue
+            kind, value = proposal
+            if kind == "ball":
+                # the event S <= s lies inside the ball for s up to its radius (per reading), so the
+                # proposal covers it all; below about the next radius a smaller ball does better
+                lo, hi = value * self._ball_step() * self.sd, value * self.sd
+            else:
+                # up to where too few draws reach the tail with their first n - 1 readings alone
+                # (see ``evaluate``)
+                hi = float(np.quantile(np.sqrt(draws.ss / (n - 1)), 1.0 - _COVERED))
+                if kind == "beyond":
+                    # above the widest spread of n readings at most t, the event S > s needs a
+                    # reading beyond t, which the proposal always has
+                    half = n // 2
+                    width = float(parent.isf(value)) - parent.support[0]
+                    lo = width * math.sqrt(half * (n - half) / (n * (n - 1.0)))
+                else:
+                    # from the middle of the spreads the proposal itself draws
+                    lo = float(np.median(np.sqrt(draws.ss[draws.proposed] / (n - 2))))
+            self.rungs.append((lo, hi, draws))
+        # the parent's own draws, where enough of them reach either tail alone
+        spread = np.sqrt(self.plain.ss / (n - 1))
+        self._plain_range = (float(np.quantile(spread, _COVERED)), float(np.quantile(spread, 1.0 - _COVERED)))
+        self.rung_points = rung_points
 
-    def evaluate(self, s: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
-        """Log CDF, log survival, density and estimated relative error (3 standard errors)."""
-        n = self.n
-        p = self.parent
+    # -- proposals ---------------------------------------------------------------------------
+
+    def _ball_step(self) -> float:
+        """Ratio of successive ball radii.
+
+        Over a rung's range of s the event S <= s keeps at least a quarter of the proposal's
+        draws (uniform in a ball of n - 2 dimensions).
+        """
+        return max(0.62, float(0.25 ** (1.0 / max(self.n - 2, 1))))
+
+    def _proposals(self) -> list[tuple[str, float]]:
+        name = self.parent.name
+        step = self._ball_step()
+        out: list[tuple[str, float]] = []
+        radius = _BALL_TOP
+        while radius ** (self.n - 1) >= _BALL_DEPTH and len(out) < 40:
+            out.append(("ball", radius))
+            radius *= step
+        low, high = self.parent.support
+        if math.isfinite(low) and math.isfinite(high):
+            out += [("tilt", a) for a in _SPREAD_TILTS]
+        elif name in ("lognormal", "gamma", "exponential", "weibull"):
+            out += [("power", c) for c in _SPREAD_POWERS]
+            # heavy upper tails: a wide spread mostly comes from one large reading
+            out += [("beyond", q) for q in _EXCEEDANCES]
+        return out
+
+    def _draw(self, points: int, seed: int, proposal: tuple[str, float] | None) -> _Draws:
+        n, p = self.n, self.parent
+        dims = n + 2
+        xs, logs, replica, flags = [], [], [], []
+        for r in range(self.replicates):
+            u = qmc.Sobol(d=dims, scramble=True, rng=np.random.default_rng(seed + r)).random(points)
+            u = np.clip(u, 1e-300, 1.0 - 1e-16)
+            plain = np.where(u[:, : n - 1] < 0.5, p.ppf(u[:, : n - 1]), p.isf(1.0 - u[:, : n - 1]))
+            if proposal is None:
+                xs.append(plain)
+                logs.append(np.zeros(points))
+                replica.append(np.full(points, r))
+                flags.append(np.zeros(points, dtype=bool))
+                continue
+            kind, value = proposal
+            other = self._proposal_draw(kind, value, u)
+            use_other = u[:, n - 1] >= _DEFENSIVE
+            x = np.where(use_other[:, None], other, plain)
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                each = p.logpdf(x)
+                log_f = each.sum(axis=1)
+                ratio = np.exp(np.minimum(self._log_ratio(kind, value, x, each), 700.0))
+                log_w = -np.log(_DEFENSIVE + (1.0 - _DEFENSIVE) * np.where(np.isnan(ratio), np.inf, ratio))
+            log_w = np.where(np.isfinite(log_f), log_w, -np.inf)
+            xs.append(x)
+            logs.append(log_w)
+            replica.append(np.full(points, r))
+            flags.append(use_other)
+        return _Draws(
+            np.concatenate(xs), np.concatenate(logs), np.concatenate(replica), np.concatenate(flags)
+        )
+
+    def _proposal_draw(self, kind: str, value: float, u: FloatArray) -> FloatArray:
+        n, p = self.n, self.parent
+        m = n - 1
+        if kind == "ball":
+            center = p.ppf(np.clip(u[:, n], 1e-12, 1.0 - 1e-12))
+            # a direction in the zero-sum subspace, from normal scores of the first n - 1 coordinates
+            z = special.ndtri(u[:, :m])
+            z -= z.mean(axis=1, keepdims=True)
+            norm = np.linalg.norm(z, axis=1, keepdims=True)
+            radius = value * self.sd * math.sqrt(m) * u[:, n + 1 : n + 2] ** (1.0 / max(m - 1, 1))
+            return np.asarray(center[:, None] + radius * z / np.maximum(norm, 1e-300), np.float64)
+        if kind == "power":
+            y = np.where(u[:, :m] < 0.5, p.ppf(u[:, :m]), p.isf(1.0 - u[:, :m]))
+            median = float(p.ppf(0.5))
+            return np.asarray(median * (y / median) ** value, np.float64)
+        if kind == "beyond":
+            # one reading (chosen by the last coordinate) drawn above the parent's upper
+            # ``value`` quantile, the others from the parent
+            y = np.where(u[:, :m] < 0.5, p.ppf(u[:, :m]), p.isf(1.0 - u[:, :m]))
+            which = np.minimum((u[:, n + 1] * m).astype(np.int64), m - 1)
+            rows = np.arange(y.shape[0])
+            y[rows, which] = p.isf(value * u[rows, which])
+            return np.asarray(y, np.float64)
+        cells, masses, low, width = self._tilt_cells(value)
+        cumulative = np.concatenate([[0.0], np.cumsum(masses)])
+        position = np.interp(u[:, :m], cumulative / cumulative[-1], np.arange(cells + 1.0))
+        return np.asarray(low + width * position, np.float64)
+
+    def _tilt_cells(self, a: float) -> tuple[int, FloatArray, float, float]:
+        """A piecewise-constant density on equal cells of the support, prop. to f exp(a z^2).
+
+        Any piecewise-constant density is a valid proposal: the weights use it exactly.
+        """
+        low, high = self.parent.support
+        cells = 4096
+        width = (high - low) / cells
+        mid = low + width * (np.arange(cells) + 0.5)
+        z = (mid - 0.5 * (low + high)) / (0.5 * (high - low))  # -1 and 1 at the ends
+        with np.errstate(divide="ignore"):
+            log_mass = self.parent.logpdf(mid) + a * z * z
+        mass = np.exp(log_mass - np.max(log_mass))
+        return cells, mass, low, width
+
+    def _log_ratio(self, kind: str, value: float, x: FloatArray, log_f: FloatArray) -> FloatArray:
+        """Log of the proposal component's density over the parent's, per draw.
+
+        ``log_f`` holds the parent's log density of each reading.
+        """
+        n, p = self.n, self.parent
+        m = n - 1
+        total = log_f.sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if kind == "ball":
+                center = x.mean(axis=1)
+                e = x - center[:, None]
+                norm = np.sqrt((e * e).sum(axis=1))
+                radius = value * self.sd * math.sqrt(m)
+                dim = m - 1
+                log_volume = (
+                    0.5 * dim * math.log(math.pi) - math.lgamma(0.5 * dim + 1.0) + dim * math.log(radius)
+                )
+                inside = norm <= radius
+                log_g = np.where(inside, p.logpdf(center) - log_volume - 0.5 * math.log(m), -np.inf)
+                return np.asarray(log_g - total, np.float64)
+            if kind == "power":
+                median = float(p.ppf(0.5))
+                y = median * (np.maximum(x, 0.0) / median) ** (1.0 / value)
+                one = np.where(x > 0, p.logpdf(y) + np.log(y) - math.log(value) - np.log(x), -np.inf)
+                return np.asarray(one.sum(axis=1) - total, np.float64)
+            if kind == "beyond":
+                # a mixture over which reading was drawn beyond: mean over j of 1{x_j > t} / value
+                over = (x > float(p.isf(value))).sum(axis=1)
+                return np.asarray(np.log(over / m) - math.log(value), np.float64)
+            cells, mass, low, width = self._tilt_cells(value)
+            density = mass / (mass.sum() * width)
+            index = np.clip(((x - low) / width).astype(np.int64), 0, cells - 1)
+            return np.asarray(np.log(density[index]).sum(axis=1) - total, np.float64)
+
+    # -- estimates ---------------------------------------------------------------------------
+
+    def _estimate(self, draws: _Draws, s: FloatArray) -> tuple[FloatArray, ...]:
+        """Per scrambling: CDF, survival and density estimates at s (arrays replicates x len(s)).
+
+        And the share of draws whose first n - 1 readings alone have a spread below s.
+        """
+        n, p = self.n, self.parent
         count = s.shape[0]
-        cdf = np.empty((self.replicates, count))
-        sf = np.empty((self.replicates, count))
-        pdf = np.empty((self.replicates, count))
+        weight = draws.weight
+        totals = draws.totals
+        cdf = np.zeros((self.replicates, count))
+        sf = np.zeros((self.replicates, count))
+        pdf = np.zeros((self.replicates, count))
+        below = np.zeros(count)
         for start in range(0, count, 16):
             chunk = s[start : start + 16]
-            gap = (n - 1) * chunk[None, :] ** 2 - self.ss[:, None]
+            gap = (n - 1) * chunk[None, :] ** 2 - draws.ss[:, None]
+            below[start : start + 16] = np.mean(gap > 0, axis=0)
             with np.errstate(invalid="ignore", divide="ignore"):
                 d = np.sqrt(np.maximum(gap, 0.0) * n / (n - 1))
                 inside = gap > 0
-                lo = self.mean[:, None] - d
-                hi = self.mean[:, None] + d
-                c = np.where(inside, p.cdf(hi) - p.cdf(lo), 0.0)
-                t = np.where(inside, p.cdf(lo) + p.sf(hi), 1.0)
+                lo = draws.mean[:, None] - d
+                hi = draws.mean[:, None] + d
+                below_band = p.cdf(lo)
+                c = np.where(inside, p.cdf(hi) - below_band, 0.0)
+                t = np.where(inside, below_band + p.sf(hi), 1.0)
                 dens = np.where(
                     inside & (d > 0),
                     (p.pdf(hi) + p.pdf(lo)) * n * chunk[None, :] / np.maximum(d, 1e-300),
                     0.0,
                 )
-            shape = (self.replicates, self.points, -1)
-            cdf[:, start : start + 16] = c.reshape(shape).mean(axis=1)
-            sf[:, start : start + 16] = t.reshape(shape).mean(axis=1)
-            pdf[:, start : start + 16] = dens.reshape(shape).mean(axis=1)
-        c_mean, s_mean = cdf.mean(axis=0), sf.mean(axis=0)
+            for target, values in ((cdf, c), (sf, t), (pdf, dens)):
+                sums = np.add.reduceat(values * weight[:, None], draws.offsets, axis=0)
+                target[:, start : start + 16] = sums / totals[:, None]
+        return cdf, sf, pdf, below
+
+    def evaluate(self, s: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+        """Log CDF, log survival, density and estimated relative error (3 standard errors)."""
+        n = self.n
         spread = 3.0 / math.sqrt(self.replicates)
+        best = [np.full(s.shape[0], np.nan), np.full(s.shape[0], np.nan)]
+        best_err = [np.full(s.shape[0], np.inf), np.full(s.shape[0], np.inf)]
+        best_pdf = [np.full(s.shape[0], np.nan), np.full(s.shape[0], np.nan)]
+        lo, hi = self._plain_range
+        body = (s >= lo) & ((s <= hi) | ((n - 1) * s**2 > self._widest_first))
+        sources: list[tuple[_Draws, NDArray[np.bool_]]] = [(self.plain, body)]
+        for lo, hi, draws in self.rungs:
+            sources.append((draws, (s >= lo) & (s <= hi)))
+        for draws, where in sources:
+            if not bool(np.any(where)):
+                continue
+            cdf, sf, pdf, below = self._estimate(draws, s[where])
+            # where a source's draws seldom reach a tail with the first n - 1 readings alone, its
+            # estimate stands on the last reading's exact part and its scatter misses what the
+            # first readings would add (one large reading of a heavy-tailed parent): not trusted,
+            # unless the first n - 1 readings cannot reach that tail at all (a bounded parent)
+            alone = (n - 1) * s[where] ** 2 <= self._widest_first
+            reach = (below, np.where(alone, 1.0 - below, 1.0))
+            for side, values in enumerate((cdf, sf)):
+                mean = values.mean(axis=0)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    err = spread * values.std(axis=0, ddof=1) / mean
+                trusted = (reach[side] >= _COVERED) | (mean >= 0.05)
+                err = np.where(np.isfinite(err) & (mean > 0) & trusted, err, np.inf)
+                idx = np.flatnonzero(where)
+                better = err < best_err[side][idx]
+                best[side][idx[better]] = mean[better]
+                best_err[side][idx[better]] = err[better]
+                best_pdf[side][idx[better]] = pdf.mean(axis=0)[better]
+        c_mean, s_mean = best
+        smaller_is_cdf = np.nan_to_num(c_mean, nan=1.0) < np.nan_to_num(s_mean, nan=1.0)
+        relative = np.where(smaller_is_cdf, best_err[0], best_err[1])
+        density = np.where(smaller_is_cdf, best_pdf[0], best_pdf[1])
         with np.errstate(divide="ignore", invalid="ignore"):
-            c_err = spread * cdf.std(axis=0, ddof=1) / c_mean
-            s_err = spread * sf.std(axis=0, ddof=1) / s_mean
-            relative = np.where(c_mean < s_mean, c_err, s_err)
-            relative = np.where(np.isfinite(relative), relative, np.inf)
-            return np.log(c_mean), np.log(s_mean), pdf.mean(axis=0), relative
+            return np.log(c_mean), np.log(s_mean), density, relative
 
 
 # ---------------------------------------------------------------- sums of positive readings

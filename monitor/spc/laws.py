@@ -22,6 +22,7 @@ range of n          any other                                            numeric
 sd of n             normal (chi law with n - 1 degrees of freedom)       closed form
 sd of 2             any (the range over sqrt 2)                          as the range
 sd of n >= 3        any other                                            randomized quasi-Monte Carlo
+                                                                         with importance sampling
 EWMA                normal                                               closed form
 EWMA                lognormal, Weibull                                   convolution (in x)
 EWMA                any other                                            convolution (Fourier series)
@@ -137,7 +138,7 @@ FloatArray = NDArray[np.float64]
 CLOSED_FORM: Final = "closed form"
 CONVOLUTION: Final = "convolution"
 INTEGRATION: Final = "numerical integration"
-SIMULATION: Final = "randomized quasi-Monte Carlo"
+SIMULATION: Final = "randomized quasi-Monte Carlo with importance sampling"
 CUSUM_METHOD: Final = "Markov chain (not in this module)"
 EXACT_ERROR: Final = 1e-14
 """Stated bound of closed forms evaluated by special functions (a few units of rounding)."""
@@ -146,6 +147,8 @@ BATES_EXACT_MAX: Final = 100
 _EWMA_BOUND: Final = 1e-13
 QUADRATURE_TAIL_FLOOR: Final = 1e-16
 """EWMA laws of lognormal and Weibull readings are computed by series down to these tails."""
+SD_PRECISION: Final = 0.1
+"""Simulated sd laws keep tail values known to this relative error (three standard errors)."""
 POSITIVE_TAIL_FLOOR: Final = 1e-40
 """Laws of means of positive readings (lognormal, Weibull) are tabulated down to these tails."""
 
@@ -938,10 +941,16 @@ def law_of_sd(parent: Parent, n: int) -> ExactLaw | TabulatedLaw:
     simulation = SdSimulation(parent, n)
 
     def evaluate(s: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
-        return _keep_precise(*simulation.evaluate(s), limit=0.05)
+        return _keep_precise(*simulation.evaluate(s), limit=SD_PRECISION)
 
     sd = parent.sd()
-    nodes = np.concatenate([np.linspace(0.0, 4.0 * sd, 161), np.linspace(4.0 * sd, 16.0 * sd, 97)])
+    nodes = np.concatenate(
+        [
+            np.geomspace(1e-3 * sd, 0.02 * sd, 14),
+            np.linspace(0.0, 4.0 * sd, 161),
+            np.linspace(4.0 * sd, 16.0 * sd, 97),
+        ]
+    )
     grid, precision, numeric = tabulate(evaluate, nodes, support=(0.0, math.inf), tolerance=1e-4, rounds=3)
     table, interpolation, relative = build_table(grid, support=(0.0, math.inf))
     absolute = max(_simulation_absolute(simulation, sd), numeric)
@@ -951,11 +960,13 @@ def law_of_sd(parent: Parent, n: int) -> ExactLaw | TabulatedLaw:
         error_bound=absolute + interpolation,
         detail=(
             f"sd of {n}: last reading integrated exactly, first {n - 1} by scrambled Sobol points "
-            f"({simulation.points} x {simulation.replicates} scramblings, seeded)"
+            f"({simulation.points} x {simulation.replicates} scramblings, seeded) and, for the "
+            f"tails, {len(simulation.rungs)} importance-sampling proposals "
+            f"({simulation.rung_points} x {simulation.replicates} each)"
         ),
         table=table,
         relative_error=precision + relative,
-        tail_floor=max(1e-6, _table_floor(table)),
+        tail_floor=_table_floor(table),
     )
 
 

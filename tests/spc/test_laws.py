@@ -610,6 +610,85 @@ def test_sd_laws_agree_with_monte_carlo(spread_laws, key, parent, n):
     monte_carlo_agrees(law, np.std(readings, axis=1, ddof=1), probabilities=(0.5, 0.1, 0.01))
 
 
+def _small_spread_tail(n: int, s: float, pdf, edges) -> float:
+    """Leading term of P(S <= s) as s -> 0: sqrt(n) int f^n times the volume of the ball of
+    radius sqrt(n - 1) s in the n - 1 dimensions of deviations (mpmath, 30 digits)."""
+    d = n - 1
+    with mpmath.workdps(30):
+        integral = mpmath.quad(lambda x: pdf(x) ** n, edges)
+        ball = (
+            mpmath.pi ** (mpmath.mpf(d) / 2) / mpmath.gamma(mpmath.mpf(d) / 2 + 1) * (mpmath.sqrt(d) * s) ** d
+        )
+        return float(mpmath.sqrt(n) * integral * ball)
+
+
+def _triangular_0_6_32(x):
+    if x <= 0 or x >= 32:
+        return mpmath.mpf(0)
+    return 2 * mpmath.mpf(x) / (32 * 6) if x < 6 else 2 * (32 - mpmath.mpf(x)) / (32 * 26)
+
+
+def _lognormal_0_half(x):
+    return mpmath.npdf(mpmath.log(x), 0, 0.5) / x if x > 0 else mpmath.mpf(0)
+
+
+@pytest.mark.parametrize(
+    ("key", "n", "pdf", "edges"),
+    [
+        ("sd skewed", 5, _triangular_0_6_32, [0, 6, 32]),
+        ("sd lognormal", 4, _lognormal_0_half, [0, 0.5, 1, 2, 5, mpmath.inf]),
+    ],
+)
+def test_sd_laws_reach_far_lower_tails_with_the_small_spread_law(spread_laws, key, n, pdf, edges):
+    """Far lower tails (1e-11 to 1e-6) against the leading term of the law near zero.
+
+    With all n readings within a small spread the density is about f(mean)^n over a ball of
+    deviations, so ``P(S <= s) ~ sqrt(n) (int f^n) V_(n-1)(sqrt(n - 1) s)`` (derived here, no
+    source; the next term is smaller by a factor of order s / sd, below 3 % at these s).
+    """
+    law = spread_laws[key]
+    parent = SKEWED if key == "sd skewed" else LOGNORMAL
+    for z in (0.002, 0.005, 0.01, 0.03):
+        s = z * parent.sd()
+        reference = _small_spread_tail(n, s, pdf, edges)
+        assert s >= law.table.x[0]  # tabulated there, not extrapolated
+        assert float(law.cdf(s)) == pytest.approx(reference, rel=0.1)
+
+
+def test_the_sd_of_three_lognormal_readings_reaches_far_upper_tails():
+    """P(S > s) down to 4e-6 against the same probability by adaptive 2-D quadrature.
+
+    The first two readings are integrated by QUADPACK (scipy.integrate.dblquad) in logit(F),
+    the third exactly: an independent method for the same integral (the law samples the first
+    two). Tolerance: the law's 10 % (three standard errors).
+    """
+    parent = LOGNORMAL
+    law = law_of_sd(parent, 3)
+    sd = parent.sd()
+
+    def x_of(t: float) -> float:
+        return float(parent.ppf(special.expit(t))) if t < 0 else float(parent.isf(special.expit(-t)))
+
+    def beyond(s: float) -> float:
+        def inner(t2: float, t1: float) -> float:
+            x1, x2 = x_of(t1), x_of(t2)
+            gap = 2.0 * s * s - 0.5 * (x1 - x2) ** 2
+            if gap <= 0:
+                value = 1.0
+            else:
+                d = math.sqrt(1.5 * gap)
+                m = 0.5 * (x1 + x2)
+                value = float(parent.cdf(m - d) + parent.sf(m + d))
+            return value * special.expit(t1) * special.expit(-t1) * special.expit(t2) * special.expit(-t2)
+
+        return integrate.dblquad(inner, -40, 40, -40, 40, epsabs=0, epsrel=1e-5)[0]
+
+    for z in (4.0, 6.0, 9.0):
+        reference = beyond(z * sd)
+        assert z * sd <= law.table.x[-1]  # tabulated there, not extrapolated
+        assert float(law.sf(z * sd)) == pytest.approx(reference, rel=0.1)
+
+
 # ------------------------------------------------------------------ EWMA
 
 
