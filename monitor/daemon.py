@@ -24,6 +24,7 @@ import bisect
 import contextlib
 import gc
 import hashlib
+import itertools
 import math
 import os
 import re
@@ -104,6 +105,8 @@ RATE_WINDOW = 10.0
 STOP_GRACE = 15.0
 """Seconds a stopping daemon keeps retrying an unreachable store before it leaves."""
 _LINK_CHECKPOINT = "@link/"  # checkpoint key prefix; '@' cannot start a chart id
+FRESH_ALERTS_HELD = 10_000
+"""Committed alerts held in memory for publishing; beyond (a long disconnection) the outbox serves."""
 
 
 def _now_ms() -> int:
@@ -776,6 +779,14 @@ class _Pending:
         return not (self.messages or o.subgroups or o.signals or o.alerts or o.limits)
 
 
+@dataclass(slots=True)
+class _Prepared:
+    """A transaction taken from a batch: the rows and checkpoints, and the messages it settles."""
+
+    batch: CommitBatch
+    pending: _Pending
+
+
 class Daemon:
     """The monitor daemon for one configuration.
 
@@ -844,6 +855,14 @@ class Daemon:
         self._limits_checked = 0.0
         self._limits_poll = config.storage.limits_poll
         self._dead_letters: deque[tuple[str, dict[str, object]]] = deque(maxlen=1000)
+        # alerts committed and not yet published, in commit order: published from memory, while
+        # the outbox row (unsent until marked) keeps them across a crash
+        self._fresh: deque[AlertRow] = deque()
+        self._outbox_backlog = True  # the outbox may hold unsent alerts that are not in _fresh
+        self._to_mark: list[tuple[str, int]] = []  # published; marked sent by the next commit
+        self._unmarked: set[str] = set()  # published, the mark not committed yet
+        self._committing: asyncio.Task[bool] | None = None
+        self._commits_refused = False  # a commit was given up at stop: none may follow it
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
         self._stopped_at: float | None = None
@@ -1114,28 +1133,60 @@ class Daemon:
     async def _commit(self, pending: _Pending) -> bool:
         """Store everything pending in one transaction, then acknowledge its messages.
 
-        While the store is unreachable this retries with capped backoff (intake waits meanwhile,
-        so memory stays bounded and the broker keeps the unacknowledged messages). When the
-        daemon is stopping it gives up after ``STOP_GRACE`` seconds without acknowledging:
-        the broker sends those messages again at the next start, so nothing is lost.
+        Waits for a commit in flight first (commits keep their order).
         """
-        store, link = self.store, self.link
-        if store is None or link is None:
-            return False
+        prepared = self._prepare(pending)
+        await self._settle()
+        return await self._store(prepared)
+
+    async def _settle(self) -> bool:
+        """Wait for the commit in flight, if any; False if it was given up."""
+        task, self._committing = self._committing, None
+        return True if task is None else await task
+
+    def _prepare(self, pending: _Pending) -> _Prepared:
+        """The transaction for what is pending, with the checkpoints as they are now.
+
+        Taken before the previous commit has finished, so that the event loop goes on
+        handling messages while the store works (the next batch's changes mark the charts
+        dirty again and go into the next transaction).
+        """
         for message in pending.messages:
             self.guard.remember(message)
-        checkpoints = {rt.chart_id: rt.to_state() for rt in self.watch.dirty}
+        dirty = list(self.watch.dirty)
+        checkpoints = {rt.chart_id: rt.to_state() for rt in dirty}
+        for runtime in dirty:
+            runtime.dirty = False
+        self.watch.dirty.clear()
         link_state = self.guard.checkpoint()
         link_state["subscriptions"] = list(self.subscriptions)
         checkpoints[_LINK_CHECKPOINT + self.broker.client_id] = link_state
         out = pending.output
+        sent, self._to_mark = self._to_mark, []
         batch = CommitBatch(
             subgroups=out.subgroups,
             signals=out.signals,
             alerts=[AlertRow(a.id, a.chart_id, a.kind.value, a.created_ms, a.event) for a in out.alerts],
             limits=out.limits,
             checkpoints=checkpoints,
+            sent=sent,
         )
+        return _Prepared(batch, pending)
+
+    async def _store(self, prepared: _Prepared) -> bool:
+        """Commit a prepared transaction, then acknowledge its messages and hand its alerts on.
+
+        While the store is unreachable this retries with capped backoff (intake waits meanwhile,
+        so memory stays bounded and the broker keeps the unacknowledged messages). When the
+        daemon is stopping it gives up after ``STOP_GRACE`` seconds without acknowledging:
+        the broker sends those messages again at the next start, so nothing is lost; no later
+        transaction is committed after one given up (its checkpoints would count those
+        messages as done).
+        """
+        store, link = self.store, self.link
+        if store is None or link is None or self._commits_refused:
+            return False
+        batch, pending = prepared.batch, prepared.pending
         delay = 0.2
         while True:
             started = time.perf_counter()
@@ -1148,6 +1199,7 @@ class Daemon:
                     _log.error(
                         "store_unreachable_at_stop", error=str(exc), unacknowledged=len(pending.messages)
                     )
+                    self._commits_refused = True
                     return False
                 _log.error("store_commit_failed", error=str(exc), retry_in=round(delay, 1))
                 await asyncio.sleep(delay)
@@ -1158,20 +1210,24 @@ class Daemon:
         self.metrics.observe_commit(elapsed)
         if self.database is not None:
             self.database.succeeded()
+        self._unmarked.difference_update(alert_id for alert_id, _ in batch.sent)
+        for message in pending.messages:
+            link.ack(message)
+        out = pending.output
         for row in out.signals:
             self.metrics.count_signal(row.chart, row.rule)
         for alert in out.alerts:
             self.metrics.count_alert(alert.chart_id, alert.kind.value)
-        for runtime in self.watch.dirty:
-            runtime.dirty = False
-        self.watch.dirty.clear()
-        for message in pending.messages:
-            link.ack(message)
         self.stats.signals += len(out.signals)
         self.stats.alerts += len(out.alerts)
         for alert in out.alerts:
             _log.info("alert_raised", chart=alert.chart_id, alert=alert.id, kind=alert.kind.value)
-        if out.alerts or self.watch.status:
+        if batch.alerts:
+            self._fresh.extend(batch.alerts)
+            if len(self._fresh) > FRESH_ALERTS_HELD:  # long disconnected: the outbox keeps them
+                self._fresh.clear()
+                self._outbox_backlog = True
+        if batch.alerts or self.watch.status:
             self._publish_wake.set()
         return True
 
@@ -1179,25 +1235,34 @@ class Daemon:
         link = self.link
         if link is None:
             return
+        held: list[Incoming] = []  # taken from the link, not handled yet (after an alert)
         while not self._stopping.is_set():
             self.heartbeat.beat()
             if self._reload_requested:
                 self._reload_requested = False
                 await self._reload(link)
             pending = _Pending()
-            try:
-                async with asyncio.timeout(self.tick):
-                    first = await link.next_message()
-            except TimeoutError:
-                first = None
-            messages = ([first] if first is not None else []) + link.take_ready(self.max_batch - 1)
+            if held:
+                messages, held = held, []
+            else:
+                try:
+                    async with asyncio.timeout(self.tick):
+                        first = await link.next_message()
+                except TimeoutError:
+                    first = None
+                messages = [first] if first is not None else []
+            messages += link.take_ready(self.max_batch - len(messages))
             self._batch_received = messages[0].received_at if messages else None
-            for message in messages:
+            for i, message in enumerate(messages):
                 if message.topic.startswith(self.ack_filter[:-1]):
                     await self._handle_ack(message)
                     link.ack(message)
                     continue
                 self.handle(message, pending)
+                if pending.output.alerts and i + 1 < len(messages):
+                    # an alert waits for its commit: commit what is handled, the rest comes next
+                    held = messages[i + 1 :]
+                    break
             now = time.time()
             fitted = False
             for runtime in list(self.watch.timed):
@@ -1208,49 +1273,59 @@ class Daemon:
             if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
                 adopted = await self._refresh_limits(self.store)
             if adopted or not pending.empty():
-                await self._commit(pending)
+                # this batch's transaction is taken now; it is committed once the one in flight
+                # is done, and the next messages are handled meanwhile
+                prepared = self._prepare(pending)
+                await self._settle()
+                self._committing = asyncio.create_task(self._store(prepared), name="monitor.store.commit")
             self._batch_received = None
+        await self._settle()
 
     async def _publish_loop(self) -> None:
         store, link = self.store, self.link
         if store is None or link is None:
             return
         while True:
-            with contextlib.suppress(TimeoutError):
+            idle = False
+            try:
                 async with asyncio.timeout(1.0):
                     await self._publish_wake.wait()
+            except TimeoutError:
+                idle = True
             self._publish_wake.clear()
-            if not link.connected:
-                continue
             try:
-                await self.publish_pending(store, link)
+                if idle:  # a quiet second: no commit is coming to carry the marks
+                    await self._mark_published(store)
+                if link.connected:
+                    await self.publish_pending(store, link)
             except StoreError as exc:  # the outbox keeps them; try again at the next wake
                 _log.error("store_read_failed", error=str(exc))
 
     async def publish_pending(self, store: Store, link: MqttLink) -> None:
-        """Publish unsent alerts (oldest first) and changed chart states; stop at the first failure."""
-        while True:
-            rows = await store.pending_alerts(500)
-            if not rows:
-                break
-            sent: list[str] = []
-            failed = False
-            for row in rows:
-                alert_topic, _, _ = topics(self.alert_settings, row.chart)
-                try:
-                    await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
-                except PublishError as exc:
-                    self.stats.publish_failures += 1
-                    await store.note_attempt([row.id])
-                    _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
-                    failed = True
-                    break
-                sent.append(row.id)
-            if sent:
-                await store.mark_sent(sent, _now_ms())
-                self.stats.published_alerts += len(sent)
-            if failed or len(rows) < 500:
-                break
+        """Publish unsent alerts (oldest first) and changed chart states; stop at the first failure.
+
+        Alerts committed by this process are published from memory right after their commit;
+        the outbox is read only for alerts that memory does not hold (from before a restart, or
+        after a failed publish). Published alerts are marked sent by the next commit.
+        """
+        if self._outbox_backlog and not await self._publish_outbox(store, link):
+            return
+        while self._fresh:
+            row = self._fresh[0]
+            alert_topic, _, _ = topics(self.alert_settings, row.chart)
+            try:
+                await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
+            except PublishError as exc:
+                self.stats.publish_failures += 1
+                await store.note_attempt([row.id])
+                _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
+                self._fresh.clear()  # all unsent in the outbox: read from there, in order
+                self._outbox_backlog = True
+                return
+            self._fresh.popleft()
+            self._to_mark.append((row.id, _now_ms()))
+            self._unmarked.add(row.id)
+            self.stats.published_alerts += 1
         while self._dead_letters:
             topic, body = self._dead_letters[0]
             try:
@@ -1271,6 +1346,46 @@ class Daemon:
                 break
             runtime.status_dirty = False
             self.watch.status.discard(runtime)
+
+    async def _publish_outbox(self, store: Store, link: MqttLink) -> bool:
+        """Publish the outbox's unsent alerts that memory does not hold; True once it is drained."""
+        while True:
+            held = {row.id for row in self._fresh} | self._unmarked
+            rows = [row for row in await store.pending_alerts(500) if row.id not in held]
+            if not rows:
+                self._outbox_backlog = False
+                return True
+            sent: list[str] = []
+            failed = False
+            for row in rows:
+                alert_topic, _, _ = topics(self.alert_settings, row.chart)
+                try:
+                    await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
+                except PublishError as exc:
+                    self.stats.publish_failures += 1
+                    await store.note_attempt([row.id])
+                    _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
+                    failed = True
+                    break
+                sent.append(row.id)
+            if sent:
+                await store.mark_sent(sent, _now_ms())
+                self.stats.published_alerts += len(sent)
+            if failed:
+                return False
+
+    async def _mark_published(self, store: Store) -> None:
+        """Mark published alerts sent now, when no commit came along to carry the marks."""
+        if not self._to_mark or (self._committing is not None and not self._committing.done()):
+            return
+        marks, self._to_mark = self._to_mark, []
+        try:
+            for sent_ms, group in itertools.groupby(sorted(marks, key=lambda m: m[1]), key=lambda m: m[1]):
+                await store.mark_sent([alert_id for alert_id, _ in group], sent_ms)
+        except StoreError:
+            self._to_mark = marks + self._to_mark  # the next commit or quiet second tries again
+            raise
+        self._unmarked.difference_update(alert_id for alert_id, _ in marks)
 
     # -- life cycle
 
@@ -1409,10 +1524,12 @@ class Daemon:
         for runtime in self.runtimes.values():
             runtime.dirty = True
         await self._commit(pending)
-        with contextlib.suppress(TimeoutError, PublishError):
+        with contextlib.suppress(TimeoutError, PublishError, StoreError):
             async with asyncio.timeout(5.0):
                 if link.connected:
                     await self.publish_pending(store, link)
+                await self._mark_published(store)
+                if link.connected:
                     await link.publish(
                         self.presence_topic,
                         orjson.dumps({"online": False, "client_id": self.broker.client_id}),

@@ -78,13 +78,18 @@ class LimitsRow:
 
 @dataclass
 class CommitBatch:
-    """Everything written in one transaction; ``checkpoints`` maps chart to its JSON state."""
+    """Everything written in one transaction; ``checkpoints`` maps chart to its JSON state.
+
+    ``sent`` lists alerts published since the last commit with when (ms): the outbox marks
+    them sent in the same transaction (the first time is kept).
+    """
 
     subgroups: list[SubgroupRow] = field(default_factory=list)
     signals: list[SignalRow] = field(default_factory=list)
     alerts: list[AlertRow] = field(default_factory=list)
     limits: list[LimitsRow] = field(default_factory=list)
     checkpoints: dict[str, dict[str, object]] = field(default_factory=dict)
+    sent: list[tuple[str, int]] = field(default_factory=list)
 
 
 @dataclass(frozen=True)

@@ -270,6 +270,7 @@ class Store:
                 checkpoints = sorted(batch.checkpoints.items())
                 rows = [{"chart": c, "state": s, "updated_ms": now} for c, s in checkpoints]
                 writes.run(conn, "checkpoints", rows)
+                writes.mark_sent(conn, batch.sent)
         except BaseException:
             self._known_charts.clear()  # the database may have changed under us: insert them again
             raise
@@ -560,6 +561,26 @@ class _Writes:
             set_={"state": upsert.excluded.state, "updated_ms": upsert.excluded.updated_ms},
         )
         self._add(schema.checkpoints, upsert, dialect)
+        alerts = schema.alerts
+        sent = (
+            update(alerts)
+            .where(alerts.c.id == bindparam("alert_id"), alerts.c.sent_ms.is_(None))
+            .values(sent_ms=bindparam("at_ms"))
+        )
+        compiled = sent.compile(dialect=dialect)
+        order = tuple(compiled.positiontup or ())
+        self._sent = (compiled.string, order or ("alert_id", "at_ms"), bool(order))
+
+    def mark_sent(self, conn: Connection, sent: list[tuple[str, int]]) -> None:
+        """Mark published alerts sent (``(id, ms)`` pairs; the first time is kept)."""
+        if not sent:
+            return
+        sql, names, positional = self._sent
+        rows = [{"alert_id": alert_id, "at_ms": at_ms} for alert_id, at_ms in sent]
+        if positional:
+            conn.exec_driver_sql(sql, [tuple(row[c] for c in names) for row in rows])
+        else:
+            conn.exec_driver_sql(sql, rows)
 
     def _add(self, table: Table, statement: Insert, dialect: Dialect) -> None:
         compiled = statement.compile(dialect=dialect)

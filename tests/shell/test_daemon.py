@@ -153,6 +153,25 @@ def test_an_out_of_control_subgroup_reaches_a_real_subscriber_as_a_cloudevent(pl
     assert data["upper"] == pytest.approx(8.0 + 3 * 0.04 / math.sqrt(5))
 
 
+def test_a_published_alert_is_marked_sent_in_its_outbox_row_while_the_daemon_runs(plant):
+    """The alert is published straight after its commit; its outbox row is marked sent soon
+    after (by the next commit, or within a quiet second), with the daemon still running."""
+    plant.write(PRESS)
+    watcher = Subscriber(f"{plant.prefix}/alerts/#")
+    daemon = plant.daemon().start()
+    sent = lambda: sqlite_rows(plant.db, "select id, sent_ms from alerts")  # noqa: E731
+    try:
+        publish(
+            plant.topic("press/thickness"), readings([8.0, 8.01, 7.99, 8.0, 8.02, 8.2, 8.21, 8.19, 8.2, 8.22])
+        )
+        received = watcher.wait_for(1)
+        assert wait_until(lambda: len(sent()) == 1 and sent()[0][1] is not None, timeout=10)
+    finally:
+        daemon.stop()
+        watcher.close()
+    assert [json.loads(p)["id"] for _, p in received] == [sent()[0][0]]
+
+
 def test_start_prints_subscriptions_storage_and_charts(plant):
     """At start the daemon says what it subscribed to, where it stores and how many charts it owns."""
     plant.write(PRESS)
@@ -450,6 +469,49 @@ def test_the_daemon_reconnects_after_the_broker_restarts_and_keeps_its_charts(tm
     record_figures(
         "broker restart", published=15, counted=15, alerts_expected=1, alerts_received=len(received)
     )
+
+
+def test_an_alert_raised_while_the_broker_is_away_is_published_when_it_returns(tmp_path):
+    """A time window closes with the broker stopped: the alert is committed, waits (unsent in
+    the outbox and in memory) and is published and marked sent once the daemon reconnects."""
+    broker = PrivateBroker(tmp_path).start()
+    plant = Plant(tmp_path, port=broker.port)
+    plant.write(
+        """\
+        - id: oven/zone
+          topic: "{root}/oven/zone"
+          payload: {{format: json, value: v, timestamp: ts}}
+          subgroup: {{window: 5s, min_size: 3, lateness: 0s}}
+          kinds: [xbar_r]
+          limits: {{mean: 200, sigma: 1}}
+          rules: none
+        """
+    )
+    daemon = plant.daemon().start()
+    alerts = lambda: sqlite_rows(plant.db, "select id, sent_ms from alerts")  # noqa: E731
+    try:
+        time.sleep(5.0 - time.time() % 5.0 + 0.05)  # windows are clock-aligned: start of one
+        now = time.time()
+        lines = [json.dumps({"v": 230.0 + k, "ts": round(now + 0.01 * k, 3)}) for k in range(4)]
+        publish(plant.topic("oven/zone"), lines, port=broker.port)
+
+        def taken() -> int:  # readings the daemon has checkpointed for the chart
+            rows = sqlite_rows(plant.db, "select state from checkpoints where chart = 'oven/zone'")
+            return int(json.loads(str(rows[0][0]))["readings"]) if rows else 0
+
+        assert wait_until(lambda: taken() == 4, timeout=10)
+        broker.stop()
+        daemon.wait_log("mqtt_connection_lost", 20)
+        # the window closes on the daemon's clock: the alert is committed, not yet sent
+        assert wait_until(lambda: len(alerts()) == 1, timeout=20)
+        assert alerts()[0][1] is None
+        broker.start()
+        daemon.wait_log("mqtt_connected", 30, count=2)
+        assert wait_until(lambda: alerts()[0][1] is not None, timeout=20)
+    finally:
+        daemon.stop()
+        broker.stop()
+    assert len(alerts()) == 1
 
 
 def test_the_daemon_connects_over_tls_with_a_client_certificate(tmp_path):

@@ -38,6 +38,16 @@ async def test_marking_an_alert_sent_again_keeps_the_first_time(store, database)
     assert [row["sent_ms"] for row in database.rows(schema.alerts)] == [T0 + 100]
 
 
+async def test_a_commit_marks_the_alerts_published_since_the_last_one(store, database):
+    """CommitBatch.sent marks outbox rows sent in the same transaction; the first time is kept."""
+    await store.commit(CommitBatch(alerts=[alert("a", "a-1"), alert("a", "a-2"), alert("a", "a-3")]))
+    await store.commit(CommitBatch(alerts=[alert("a", "a-4")], sent=[("a-1", T0 + 100), ("a-2", T0 + 110)]))
+    assert [p.id for p in await store.pending_alerts()] == ["a-3", "a-4"]
+    await store.commit(CommitBatch(sent=[("a-1", T0 + 900), ("a-3", T0 + 120), ("no-such", T0)]))
+    sent = {row["id"]: row["sent_ms"] for row in database.rows(schema.alerts)}
+    assert sent == {"a-1": T0 + 100, "a-2": T0 + 110, "a-3": T0 + 120, "a-4": None}
+
+
 async def test_an_alert_names_its_chart(store):
     """alert_chart gives the chart of a stored alert and None for an unknown id."""
     await store.commit(CommitBatch(alerts=[alert("press-1/bore", "x-1")]))
