@@ -28,7 +28,7 @@ import math
 from dataclasses import dataclass
 from functools import cache
 
-from scipy import special, stats
+from scipy import special
 
 from monitor.spc.constants import c4, d2, range_cdf
 from monitor.spc.rules import Rule
@@ -81,7 +81,7 @@ def pattern_probability(rule: Rule, limit_sigma: float = 3.0) -> float:
     if rule.id in (RuleId.OUTER_ZONE_CLUSTER, RuleId.MIDDLE_ZONE_CLUSTER):
         q = _upper_tail(rule.sigma)
         # the newest point is beyond, and at least count - 1 of the window's others on that side
-        others = float(stats.binom.sf(rule.count - 2, rule.length - 1, q))
+        others = float(special.bdtrc(rule.count - 2, rule.length - 1, q))  # binomial P(X > count - 2)
         return 2.0 * q * others
     if rule.id is RuleId.SAME_SIDE_RUN:
         return 2.0 * 0.5**rule.length
