@@ -796,6 +796,10 @@ class Daemon:
         environ: environment for secrets (the broker password).
         max_batch: most messages per store transaction.
         tick: seconds between time-window checks when no message comes.
+        group_window: seconds a message waits at most for others to share its transaction.
+        group_messages: messages that make a transaction without waiting (below the broker's
+            in-flight window, 20 by default in Mosquitto: messages are acknowledged after their
+            commit, so a larger group would stall the broker's sending).
     """
 
     def __init__(
@@ -806,6 +810,8 @@ class Daemon:
         environ: Mapping[str, str] | None = None,
         max_batch: int = 2000,
         tick: float = 0.5,
+        group_window: float = 0.002,
+        group_messages: int = 16,
     ) -> None:
         env = os.environ if environ is None else environ
         _check_daemon_config(config)
@@ -843,6 +849,8 @@ class Daemon:
         self.presence_topic = f"{a.prefix}/daemon/{self.broker.client_id}"
         self.max_batch = max_batch
         self.tick = tick
+        self.group_window = group_window
+        self.group_messages = max(1, min(group_messages, max_batch))
         self.stats = DaemonStats()
         self.runtimes: dict[str, ChartRuntime] = {}
         self.watch = ChangeWatch()
@@ -1232,27 +1240,46 @@ class Daemon:
         return True
 
     async def _process_loop(self) -> None:
+        """Take messages, handle them and commit them in groups.
+
+        A group is committed (and its messages acknowledged) as soon as it holds an alert, once
+        it holds ``group_messages`` messages (or more: all those already waiting, up to
+        ``max_batch``), or ``group_window`` seconds after its first message: one transaction
+        carries many messages without keeping any waiting long.
+        While a commit runs on the store's thread (PostgreSQL) the next messages are handled.
+        """
         link = self.link
         if link is None:
             return
         held: list[Incoming] = []  # taken from the link, not handled yet (after an alert)
+        pending = _Pending()
+        opened: float | None = None  # when the group's first message was taken (monotonic)
         while not self._stopping.is_set():
             self.heartbeat.beat()
             if self._reload_requested:
+                if opened is not None:  # the group belongs to the charts as they are
+                    await self._commit_group(pending)
+                    pending, opened = _Pending(), None
                 self._reload_requested = False
                 await self._reload(link)
-            pending = _Pending()
             if held:
                 messages, held = held, []
             else:
-                try:
-                    async with asyncio.timeout(self.tick):
-                        first = await link.next_message()
-                except TimeoutError:
-                    first = None
+                wait = self.tick if opened is None else opened + self.group_window - time.monotonic()
+                first = None
+                if wait > 0:
+                    try:
+                        async with asyncio.timeout(wait):
+                            first = await link.next_message()
+                    except TimeoutError:
+                        pass
                 messages = [first] if first is not None else []
-            messages += link.take_ready(self.max_batch - len(messages))
-            self._batch_received = messages[0].received_at if messages else None
+            # what is already waiting joins the group (a backlog drains in large transactions)
+            room = self.max_batch - len(pending.messages) - len(messages)
+            messages += link.take_ready(max(room, 0))
+            if messages and opened is None:
+                opened = time.monotonic()
+                self._batch_received = messages[0].received_at
             for i, message in enumerate(messages):
                 if message.topic.startswith(self.ack_filter[:-1]):
                     await self._handle_ack(message)
@@ -1272,14 +1299,33 @@ class Daemon:
             adopted = fitted  # a parent fitted to a baseline is checkpointed at once
             if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
                 adopted = await self._refresh_limits(self.store)
-            if adopted or not pending.empty():
-                # this batch's transaction is taken now; it is committed once the one in flight
-                # is done, and the next messages are handled meanwhile
-                prepared = self._prepare(pending)
-                await self._settle()
-                self._committing = asyncio.create_task(self._store(prepared), name="monitor.store.commit")
-            self._batch_received = None
+            due = (
+                adopted
+                or bool(pending.output.alerts)
+                or len(pending.messages) >= self.group_messages
+                or (opened is not None and time.monotonic() - opened >= self.group_window)
+                or (opened is None and not pending.empty())  # output without messages (time windows)
+            )
+            if due and (adopted or not pending.empty()):
+                await self._commit_group(pending)
+                pending, opened = _Pending(), None
+        if not pending.empty():  # stopping: what was handled is committed and acknowledged
+            await self._commit_group(pending)
         await self._settle()
+
+    async def _commit_group(self, pending: _Pending) -> None:
+        """Take the group's transaction now and commit it once the one in flight is done.
+
+        On the store's thread (PostgreSQL) the commit runs while the next messages are handled;
+        SQLite commits on the event loop thread, at once.
+        """
+        prepared = self._prepare(pending)
+        await self._settle()
+        if self.store is not None and self.store.inline:  # no thread to overlap with: commit now
+            await self._store(prepared)
+        else:
+            self._committing = asyncio.create_task(self._store(prepared), name="monitor.store.commit")
+        self._batch_received = None
 
     async def _publish_loop(self) -> None:
         store, link = self.store, self.link

@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import asyncio
 import math
+import sqlite3
 from dataclasses import replace
 
 import pytest
 
-from monitor.store import CommitBatch, LimitsRow, StoreError, SubgroupRow, schema
+from monitor.store import CommitBatch, LimitsRow, Store, StoreError, SubgroupRow, schema
+from monitor.store.store import WAL_CHECKPOINT_EVERY
 from tests.store.samples import T0, alert, full_batch, limits, signal, subgroup
 
 
@@ -166,3 +169,25 @@ async def test_chart_positions_give_the_next_subgroup_and_the_latest_limits_vers
         )
     )
     assert await store.chart_positions() == {"a": (8, 2), "b": (4, 0), "c": (0, 4)}
+
+
+async def test_sqlite_keeps_its_write_ahead_log_bounded_and_folds_it_in_at_close(tmp_path):
+    """Commits run on the caller's thread with passive checkpoints on the store's: over 25 MB of
+    commits the log stays near SQLite's 1000-page checkpoint size, and closing empties it."""
+    path = tmp_path / "monitor.db"
+    wal = tmp_path / "monitor.db-wal"
+    store = await Store.open(f"sqlite:///{path}")
+    assert store.inline
+    state = {"readings": list(range(1500))}  # about 8 KB per checkpoint row
+    largest = 0
+    try:
+        for k in range(30 * WAL_CHECKPOINT_EVERY):
+            await store.commit(CommitBatch(subgroups=[subgroup("a", k)], checkpoints={"a": state}))
+            await asyncio.sleep(0)  # the passive checkpoints run on the store's thread
+            largest = max(largest, wal.stat().st_size)
+    finally:
+        await store.close()
+    assert largest < 12 * 2**20  # 1000 pages of 4 KiB, a checkpoint's worth of slack
+    assert not wal.exists() or wal.stat().st_size == 0
+    with sqlite3.connect(path) as db:
+        assert db.execute("select count(*) from subgroups").fetchone() == (30 * WAL_CHECKPOINT_EVERY,)
