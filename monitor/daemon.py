@@ -1306,9 +1306,11 @@ class Daemon:
                 or (opened is not None and time.monotonic() - opened >= self.group_window)
                 or (opened is None and not pending.empty())  # output without messages (time windows)
             )
-            if due and (adopted or not pending.empty()):
-                await self._commit_group(pending)
-                pending, opened = _Pending(), None
+            if due:
+                if adopted or not pending.empty():
+                    await self._commit_group(pending)
+                pending, opened = _Pending(), None  # (a group of acknowledgements only: nothing)
+                self._batch_received = None
         if not pending.empty():  # stopping: what was handled is committed and acknowledged
             await self._commit_group(pending)
         await self._settle()

@@ -264,6 +264,13 @@ class DaemonProcess:
                 return int(line.split()[1]) / 1024
         return 0.0
 
+    def cpu_seconds(self) -> float:
+        """CPU time the daemon process has used so far (user + system, from /proc)."""
+        if self.process is None:
+            return 0.0
+        fields = Path(f"/proc/{self.process.pid}/stat").read_text().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
     def log_text(self) -> str:
         return self.log.read_text(errors="replace") if self.log.exists() else ""
 

@@ -291,6 +291,10 @@ def test_an_acknowledgement_is_stored_and_shown_in_the_retained_status(plant):
                 for t, p in watcher.matching("/status/press/thickness")
             )
         )
+        # with nothing left to do the daemon waits: an idle loop does not spin on the processor
+        used = daemon.cpu_seconds()
+        time.sleep(2.0)
+        assert daemon.cpu_seconds() - used < 0.5
     finally:
         daemon.stop()
         watcher.close()
