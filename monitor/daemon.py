@@ -871,6 +871,7 @@ class Daemon:
         self._unmarked: set[str] = set()  # published, the mark not committed yet
         self._committing: asyncio.Task[bool] | None = None
         self._commits_refused = False  # a commit was given up at stop: none may follow it
+        self._counted = (0, 0, 0)  # messages, readings, subgroups already in the metrics
         self._publish_wake = asyncio.Event()
         self._stopping = asyncio.Event()
         self._stopped_at: float | None = None
@@ -975,7 +976,6 @@ class Daemon:
     def handle(self, message: Incoming, pending: _Pending) -> None:
         """Process one chart message into pending output (nothing is committed here)."""
         self.stats.messages += 1
-        self.metrics.count_messages()
         pending.messages.append(message)
         if self.guard.seen(message):
             self.stats.duplicate_messages += 1
@@ -1043,11 +1043,9 @@ class Daemon:
                     continue
                 readings.append(Reading(item.value, moment, item.exposure))
             self.stats.readings += len(readings)
-            self.metrics.count_readings(len(readings))
             before = len(pending.output.subgroups)
             runtime.feed(readings, now_ms, pending.output)
             self.stats.subgroups += len(pending.output.subgroups) - before
-            self.metrics.count_subgroups(len(pending.output.subgroups) - before)
             if runtime.note_rate(len(readings), message.received_at):
                 self.stats.floods += 1
                 _log.warning(
@@ -1161,6 +1159,7 @@ class Daemon:
         """
         for message in pending.messages:
             self.guard.remember(message)
+        self._count_handled()
         dirty = list(self.watch.dirty)
         checkpoints = {rt.chart_id: rt.to_state() for rt in dirty}
         for runtime in dirty:
@@ -1180,6 +1179,14 @@ class Daemon:
             sent=sent,
         )
         return _Prepared(batch, pending)
+
+    def _count_handled(self) -> None:
+        """Bring the message, reading and subgroup counters of the metrics up to the stats."""
+        stats, counted = self.stats, self._counted
+        self.metrics.count_messages(stats.messages - counted[0])
+        self.metrics.count_readings(stats.readings - counted[1])
+        self.metrics.count_subgroups(stats.subgroups - counted[2])
+        self._counted = (stats.messages, stats.readings, stats.subgroups)
 
     async def _store(self, prepared: _Prepared) -> bool:
         """Commit a prepared transaction, then acknowledge its messages and hand its alerts on.
@@ -1254,6 +1261,8 @@ class Daemon:
         held: list[Incoming] = []  # taken from the link, not handled yet (after an alert)
         pending = _Pending()
         opened: float | None = None  # when the group's first message was taken (monotonic)
+        closing: asyncio.TimerHandle | None = None  # wakes the wait below when the group is due
+        loop = asyncio.get_running_loop()
         while not self._stopping.is_set():
             self.heartbeat.beat()
             if self._reload_requested:
@@ -1265,14 +1274,13 @@ class Daemon:
             if held:
                 messages, held = held, []
             else:
-                wait = self.tick if opened is None else opened + self.group_window - time.monotonic()
                 first = None
-                if wait > 0:
-                    try:
-                        async with asyncio.timeout(wait):
+                if opened is not None:  # the group's timer wakes this wait when the group is due
+                    first = await link.next_message()
+                else:
+                    with contextlib.suppress(TimeoutError):
+                        async with asyncio.timeout(self.tick):
                             first = await link.next_message()
-                    except TimeoutError:
-                        pass
                 messages = [first] if first is not None else []
             # what is already waiting joins the group (a backlog drains in large transactions)
             room = self.max_batch - len(pending.messages) - len(messages)
@@ -1280,6 +1288,7 @@ class Daemon:
             if messages and opened is None:
                 opened = time.monotonic()
                 self._batch_received = messages[0].received_at
+                closing = loop.call_later(self.group_window, link.wake)
             for i, message in enumerate(messages):
                 if message.topic.startswith(self.ack_filter[:-1]):
                     await self._handle_ack(message)
@@ -1307,10 +1316,15 @@ class Daemon:
                 or (opened is None and not pending.empty())  # output without messages (time windows)
             )
             if due:
+                if closing is not None:
+                    closing.cancel()
+                    closing = None
                 if adopted or not pending.empty():
                     await self._commit_group(pending)
                 pending, opened = _Pending(), None  # (a group of acknowledgements only: nothing)
                 self._batch_received = None
+        if closing is not None:
+            closing.cancel()
         if not pending.empty():  # stopping: what was handled is committed and acknowledged
             await self._commit_group(pending)
         await self._settle()
