@@ -217,7 +217,12 @@ class _Draws:
     """The first n - 1 readings of a proposal: their mean, sum of squares and log weight."""
 
     def __init__(
-        self, x: FloatArray, log_weight: FloatArray, replica: NDArray[np.int64], proposed: NDArray[np.bool_]
+        self,
+        x: FloatArray,
+        log_weight: FloatArray,
+        replica: NDArray[np.int64],
+        proposed: NDArray[np.bool_],
+        replicates: int,
     ) -> None:
         kept = np.isfinite(log_weight)  # zero weight: a reading outside the parent's support
         x = x[kept]
@@ -226,10 +231,12 @@ class _Draws:
         self.weight = np.exp(log_weight[kept])
         self.proposed = proposed[kept]
         replica = replica[kept]
-        self.replicates = int(replica.max()) + 1 if replica.shape[0] else 0
-        # draws are in replicate order: each replicate's slice starts at its offset
-        self.offsets = np.searchsorted(replica, np.arange(self.replicates))
-        self.totals = np.bincount(replica, minlength=self.replicates).astype(np.float64)
+        # draws are in replicate order: each replicate's slice starts at its offset (every
+        # replicate keeps the draws from the parent's own share of the mixture)
+        self.totals = np.bincount(replica, minlength=replicates).astype(np.float64)
+        if bool(np.any(self.totals == 0)):
+            raise ValueError("a scrambling kept no draws")  # pragma: no cover - see above
+        self.offsets = np.searchsorted(replica, np.arange(replicates))
 
 
 class SdSimulation:
@@ -255,7 +262,6 @@ class SdSimulation:
         self.n = n
         self.replicates = replicates
         self.points = points
-        self._seed = seed
         self.sd = parent.sd()
         self.plain = self._draw(points, seed, None)
         low, high = parent.support
@@ -347,7 +353,11 @@ class SdSimulation:
             replica.append(np.full(points, r))
             flags.append(use_other)
         return _Draws(
-            np.concatenate(xs), np.concatenate(logs), np.concatenate(replica), np.concatenate(flags)
+            np.concatenate(xs),
+            np.concatenate(logs),
+            np.concatenate(replica),
+            np.concatenate(flags),
+            self.replicates,
         )
 
     def _proposal_draw(self, kind: str, value: float, u: FloatArray) -> FloatArray:
