@@ -409,16 +409,6 @@ def _panels(
     return x, w * parent.pdf(x)
 
 
-class _NodeMoments:
-    """Tilted moments of a discrete law on nodes (see ``_mix_moments``)."""
-
-    def __init__(self, x: FloatArray, w: FloatArray) -> None:
-        self.x, self.w = x, w
-
-    def __call__(self, theta: FloatArray, anchor: float) -> tuple[FloatArray, FloatArray, FloatArray]:
-        return _mix_moments(theta, self.x - anchor, self.w)
-
-
 class _GaussLegendre:
     """Composite Gauss-Legendre nodes for a parent truncated at its ``TRUNCATION`` quantiles."""
 
@@ -431,7 +421,6 @@ class _GaussLegendre:
         self.mass = float(w.sum())
         self.x, self.w = x, w / self.mass
         self.mean = float(np.dot(self.w, x))
-        self.tilted_moments = _NodeMoments(self.x, self.w)
         self.variance = float(np.dot(self.w, (x - self.mean) ** 2))
         self.abs_third = float(np.dot(self.w, np.abs(x - self.mean) ** 3))
 
@@ -481,7 +470,6 @@ class QuadratureSpectrum:
         self.mean = float(np.dot(self.w, self.x))
         self.variance = float(np.dot(self.w, (self.x - self.mean) ** 2))
         self.abs_third = float(np.dot(self.w, np.abs(self.x - self.mean) ** 3))
-        self.tilted_moments = _NodeMoments(self.x, self.w)
         name = parent.name
         self.upward = name in ("gamma", "exponential") or (name == "weibull" and parent.param("shape") > 1.0)
 
@@ -491,6 +479,10 @@ class QuadratureSpectrum:
 
     def log_cf_uniform(self, tilt: float, spacing: float, count: int, anchor: float) -> ComplexArray:
         return self.log_cf(_uniform_points(tilt, spacing, count), anchor)
+
+    def tilted_moments(self, theta: FloatArray, anchor: float) -> tuple[FloatArray, FloatArray, FloatArray]:
+        """Log E exp(theta (X - anchor)) and the mean and variance of X - anchor under the tilt."""
+        return _mix_moments(theta, self.x - anchor, self.w)
 
 
 def spectrum_of(parent: Parent, *, numerical: bool = False) -> Spectrum:
