@@ -24,7 +24,6 @@ import bisect
 import contextlib
 import gc
 import hashlib
-import itertools
 import math
 import os
 import re
@@ -1374,20 +1373,11 @@ class Daemon:
             return
         while self._fresh:
             row = self._fresh[0]
-            alert_topic, _, _ = topics(self.alert_settings, row.chart)
-            try:
-                await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
-            except PublishError as exc:
-                self.stats.publish_failures += 1
-                await store.note_attempt([row.id])
-                _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
+            if not await self._publish_alert(store, link, row.id, row.chart, row.event):
                 self._fresh.clear()  # all unsent in the outbox: read from there, in order
                 self._outbox_backlog = True
                 return
             self._fresh.popleft()
-            self._to_mark.append((row.id, _now_ms()))
-            self._unmarked.add(row.id)
-            self.stats.published_alerts += 1
         while self._dead_letters:
             topic, body = self._dead_letters[0]
             try:
@@ -1409,6 +1399,23 @@ class Daemon:
             runtime.status_dirty = False
             self.watch.status.discard(runtime)
 
+    async def _publish_alert(
+        self, store: Store, link: MqttLink, alert_id: str, chart: str, event: dict[str, object]
+    ) -> bool:
+        """Publish one alert; once the broker has it, it waits to be marked sent (next commit)."""
+        alert_topic, _, _ = topics(self.alert_settings, chart)
+        try:
+            await link.publish(alert_topic, orjson.dumps(event), qos=1)
+        except PublishError as exc:
+            self.stats.publish_failures += 1
+            await store.note_attempt([alert_id])
+            _log.warning("alert_publish_failed", chart=chart, alert=alert_id, error=str(exc))
+            return False
+        self._to_mark.append((alert_id, _now_ms()))
+        self._unmarked.add(alert_id)
+        self.stats.published_alerts += 1
+        return True
+
     async def _publish_outbox(self, store: Store, link: MqttLink) -> bool:
         """Publish the outbox's unsent alerts that memory does not hold; True once it is drained."""
         while True:
@@ -1417,24 +1424,9 @@ class Daemon:
             if not rows:
                 self._outbox_backlog = False
                 return True
-            sent: list[str] = []
-            failed = False
             for row in rows:
-                alert_topic, _, _ = topics(self.alert_settings, row.chart)
-                try:
-                    await link.publish(alert_topic, orjson.dumps(row.event), qos=1)
-                except PublishError as exc:
-                    self.stats.publish_failures += 1
-                    await store.note_attempt([row.id])
-                    _log.warning("alert_publish_failed", chart=row.chart, alert=row.id, error=str(exc))
-                    failed = True
-                    break
-                sent.append(row.id)
-            if sent:
-                await store.mark_sent(sent, _now_ms())
-                self.stats.published_alerts += len(sent)
-            if failed:
-                return False
+                if not await self._publish_alert(store, link, row.id, row.chart, row.event):
+                    return False
 
     async def _mark_published(self, store: Store) -> None:
         """Mark published alerts sent now, when no commit came along to carry the marks."""
@@ -1442,8 +1434,7 @@ class Daemon:
             return
         marks, self._to_mark = self._to_mark, []
         try:
-            for sent_ms, group in itertools.groupby(sorted(marks, key=lambda m: m[1]), key=lambda m: m[1]):
-                await store.mark_sent([alert_id for alert_id, _ in group], sent_ms)
+            await store.commit(CommitBatch(sent=marks))
         except StoreError:
             self._to_mark = marks + self._to_mark  # the next commit or quiet second tries again
             raise
