@@ -29,15 +29,17 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import operator
 import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from functools import lru_cache
-from typing import Literal, NamedTuple, TypeAlias, TypeVar, get_args
+from typing import Any, Literal, NamedTuple, TypeAlias, TypeVar, get_args
 
 import numpy as np
 import orjson
+from numpy.typing import NDArray
 
 from monitor.spc.errors import ConfigError, ReadingError
 from monitor.spc.subgroups import Reading
@@ -47,6 +49,7 @@ __all__ = [
     "PAYLOAD_REASONS",
     "REJECTION_REASONS",
     "CacheInfo",
+    "Columns",
     "Decoded",
     "PayloadError",
     "PayloadMapping",
@@ -57,6 +60,7 @@ __all__ = [
     "Router",
     "Routing",
     "decode",
+    "decode_columns",
 ]
 
 # ================================================================ payload decoding
@@ -261,14 +265,7 @@ def decode(payload: bytes, mapping: PayloadMapping, received_at: float) -> list[
         ...
         monitor.ingest.PayloadError: the message is not finite: 'NaN'
     """
-    if not math.isfinite(received_at):
-        raise ConfigError(f"received_at must be a finite number of seconds, got {received_at!r}")
-    if len(payload) > mapping.max_bytes:
-        raise PayloadError(
-            "too_large", f"the message has {len(payload)} bytes, more than the {mapping.max_bytes} allowed"
-        )
-    if payload[:3] == _BOM:
-        payload = payload[3:]
+    payload = _checked(payload, mapping, received_at)
     if mapping.format == "number":
         try:
             text = bytes(payload).decode("utf-8")
@@ -277,12 +274,199 @@ def decode(payload: bytes, mapping: PayloadMapping, received_at: float) -> list[
         return [Decoded(_number_text(text, "the message"), received_at, None, None, 0)]
 
     document = _parse_json(payload, mapping.max_depth)
+    return _readings(document, _plan(mapping), mapping, received_at)
+
+
+@dataclass(frozen=True, slots=True)
+class Columns:
+    """The readings of one message as arrays, one per field (no object per reading).
+
+    ``sequences`` is None when the mapping has no sequence number; its dtype is ``object``
+    only for numbers beyond 64 bits. ``exposures`` is None when the mapping has no exposure.
+    """
+
+    values: NDArray[np.float64]
+    times: NDArray[np.float64]
+    sequences: NDArray[Any] | None
+    exposures: NDArray[np.float64] | None
+
+    def __len__(self) -> int:
+        """Number of readings."""
+        return int(self.values.shape[0])
+
+    @classmethod
+    def of(cls, readings: Sequence[Decoded], mapping: PayloadMapping) -> Columns:
+        """The columns of decoded readings (fields the mapping does not name stay None)."""
+        sequences = None
+        if mapping.sequence is not None:
+            try:
+                sequences = np.array([r.sequence for r in readings], dtype=np.int64)
+            except OverflowError:
+                sequences = np.array([r.sequence for r in readings], dtype=object)
+        return cls(
+            np.array([r.value for r in readings], dtype=np.float64),
+            np.array([r.time for r in readings], dtype=np.float64),
+            sequences,
+            None if mapping.exposure is None else np.array([r.exposure for r in readings], dtype=np.float64),
+        )
+
+    def decoded(self) -> list[Decoded]:
+        """The readings as :class:`Decoded` tuples (what :func:`decode` returns)."""
+        count = len(self)
+        sequences = [None] * count if self.sequences is None else [int(s) for s in self.sequences.tolist()]
+        exposures = [None] * count if self.exposures is None else self.exposures.tolist()
+        return [
+            Decoded(value, time, sequence, exposure, position)
+            for position, (value, time, sequence, exposure) in enumerate(
+                zip(self.values.tolist(), self.times.tolist(), sequences, exposures, strict=True)
+            )
+        ]
+
+
+def decode_columns(payload: bytes, mapping: PayloadMapping, received_at: float) -> Columns:
+    """:func:`decode` for batches, as arrays: the same readings, the same refusals.
+
+    A batch whose fields are plain JSON numbers at one key each (the common case) is read
+    column by column into arrays; anything else (strings, ISO times, nested paths, a bad
+    reading) goes through :func:`decode`, which also names the reading at fault.
+
+    Examples:
+        >>> mapping = PayloadMapping(format="json", timestamp="ts", sequence="seq", batch="array")
+        >>> columns = decode_columns(b'[{"value": 8.01, "ts": 1709294400000, "seq": 7},'
+        ...                          b' {"value": 8.02, "ts": 1709294401000, "seq": 8}]', mapping, 0.0)
+        >>> columns.values.tolist(), columns.times.tolist(), columns.sequences.tolist()
+        ([8.01, 8.02], [1709294400.0, 1709294401.0], [7, 8])
+        >>> decode_columns(b'[{"value": 8.01, "ts": true, "seq": 7}]', mapping, 0.0)
+        Traceback (most recent call last):
+        ...
+        monitor.ingest.PayloadError: reading 0: field 'ts' is true, expected an ISO 8601 time or epoch seconds
+    """
+    if mapping.format != "json" or mapping.batch == "none":
+        return Columns.of(decode(payload, mapping, received_at), mapping)
+    payload = _checked(payload, mapping, received_at)
+    document = _loads(payload, mapping.max_depth)
     plan = _plan(mapping)
+    raw = _raw_columns(document, plan, mapping)  # (only for documents two levels deep)
+    if raw is not None:
+        fast = _fast_columns(raw, received_at)
+        if fast is not None:
+            return fast
+    _check_depth(document, payload, mapping.max_depth)
+    return Columns.of(_readings(document, plan, mapping, received_at), mapping)
+
+
+def _checked(payload: bytes, mapping: PayloadMapping, received_at: float) -> bytes:
+    """The payload without a byte order mark, after the checks every message gets."""
+    if not math.isfinite(received_at):
+        raise ConfigError(f"received_at must be a finite number of seconds, got {received_at!r}")
+    if len(payload) > mapping.max_bytes:
+        raise PayloadError(
+            "too_large", f"the message has {len(payload)} bytes, more than the {mapping.max_bytes} allowed"
+        )
+    return payload[3:] if payload[:3] == _BOM else payload
+
+
+def _readings(document: object, plan: _Plan, mapping: PayloadMapping, received_at: float) -> list[Decoded]:
     if mapping.batch == "none":
         return [_mapped(document, plan, received_at, 0, "the message")]
     if mapping.batch == "array":
         return _array(document, plan, mapping, received_at)
     return _columns(document, plan, mapping, received_at)
+
+
+_RawColumns: TypeAlias = tuple[list[object], list[object] | None, list[object] | None, list[object] | None]
+
+
+def _raw_columns(document: object, plan: _Plan, mapping: PayloadMapping) -> _RawColumns | None:
+    """The JSON values of each field as lists, or None.
+
+    None unless every field is one key and the document holds nothing else: it is then two
+    levels deep at most, within any ``max_depth`` but 1, and needs no scan of its nesting.
+    """
+    keys = plan.flat
+    if keys is None or mapping.max_depth < 2 or plan.items.keys:
+        return None
+    named = sum(key is not None for key in keys)
+    columns: list[list[object] | None]
+    if mapping.batch == "columns":
+        if type(document) is not dict or len(document) != named:
+            return None
+        columns = []
+        for key in keys:
+            column = None if key is None else document.get(key)
+            if key is not None and type(column) is not list:
+                return None
+            columns.append(column)
+        if len({len(c) for c in columns if c is not None}) != 1:
+            return None
+    else:
+        items = document
+        if type(items) is not list or not items:
+            return None
+        if named == 1 and set(map(type, items)) <= _NUMBER_TYPES:
+            columns = [items, None, None, None]  # bare numbers
+        else:
+            present = [key for key in keys if key is not None]
+            try:
+                rows = list(map(operator.itemgetter(*present), items))
+                if sum(map(len, items)) != named * len(items):  # other fields in some readings
+                    return None
+            except (KeyError, TypeError):  # not objects, or a field missing
+                return None
+            found = iter(zip(*rows, strict=True) if named > 1 else [rows])
+            columns = [None if key is None else list(next(found)) for key in keys]
+    values = columns[0]
+    if values is None or not 1 <= len(values) <= mapping.max_batch:
+        return None
+    return values, columns[1], columns[2], columns[3]
+
+
+def _fast_columns(raw: _RawColumns, received_at: float) -> Columns | None:
+    """Arrays of plain JSON numbers, when each is acceptable as it is.
+
+    None sends the batch through :func:`decode`, which refuses it or reads strings and other forms.
+    """
+    value_list, time_list, sequence_list, exposure_list = raw
+    values = _plain_floats(value_list)
+    if values is None:
+        return None
+    if time_list is None:
+        times = np.full(values.shape[0], received_at)
+    else:
+        stamps = _plain_floats(time_list)
+        if stamps is None:
+            return None
+        times = np.where(stamps > _MILLISECONDS_ABOVE, stamps / 1000.0, stamps)
+        if not ((times >= _EARLIEST) & (times < _LATEST)).all():
+            return None
+    sequences = None
+    if sequence_list is not None:
+        if set(map(type, sequence_list)) != {int}:
+            return None
+        try:
+            sequences = np.array(sequence_list, dtype=np.int64)
+        except OverflowError:
+            return None
+    exposures = None
+    if exposure_list is not None:
+        exposures = _plain_floats(exposure_list)
+        if exposures is None or not (exposures > 0.0).all():
+            return None
+    return Columns(values, times, sequences, exposures)
+
+
+def _plain_floats(raw: list[object]) -> NDArray[np.float64] | None:
+    """A list of JSON numbers (not booleans, within 2**53) as finite floats; None otherwise."""
+    kinds = set(map(type, raw))
+    if not kinds <= _NUMBER_TYPES:
+        return None
+    try:
+        array = np.array(raw, dtype=np.float64)
+    except OverflowError:
+        return None
+    if not np.isfinite(array).all() or (int in kinds and (np.abs(array) > _BIGGEST).any()):
+        return None
+    return array
 
 
 # ---------------------------------------------------------------- JSON and its limits
@@ -300,6 +484,13 @@ _NESTING_STEP[list(b"]}")] = -1
 
 def _parse_json(payload: bytes, max_depth: int) -> object:
     """One parse of the whole message, errors mapped to reasons."""
+    document = _loads(payload, max_depth)
+    _check_depth(document, payload, max_depth)
+    return document
+
+
+def _loads(payload: bytes, max_depth: int) -> object:
+    """The parsed document (``max_depth`` is not checked here, only named in errors)."""
     try:
         document: object = orjson.loads(payload)
     except orjson.JSONDecodeError as error:
@@ -317,13 +508,16 @@ def _parse_json(payload: bytes, max_depth: int) -> object:
                 "not_finite", f"the message holds a number too large for a float ({message})"
             ) from None
         raise PayloadError("not_json", f"the message is not JSON (RFC 8259): {message}") from None
+    return document
+
+
+def _check_depth(document: object, payload: bytes, max_depth: int) -> None:
     if (
         isinstance(document, list | dict)
         and payload.count(b"[") + payload.count(b"{") > max_depth
         and _nesting(payload) > max_depth
     ):
         raise PayloadError("too_deep", f"the message nests arrays and objects deeper than {max_depth} levels")
-    return document
 
 
 def _nesting(text: bytes) -> int:
@@ -404,6 +598,7 @@ def _lookup(node: object, field: _Field, root: str) -> object:
 
 
 _MISSING = object()
+_NUMBER_TYPES = frozenset((float, int))  # (not bool: type(True) is bool)
 _BIGGEST = 2**53  # integers up to this convert to floats exactly (and never overflow)
 
 

@@ -18,9 +18,11 @@ import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
+from monitor import ingest
 from monitor.ingest import (
     PAYLOAD_REASONS,
     REJECTION_REASONS,
+    Columns,
     Decoded,
     PayloadError,
     PayloadMapping,
@@ -30,6 +32,7 @@ from monitor.ingest import (
     _iso_seconds,
     _nesting,
     decode,
+    decode_columns,
 )
 from monitor.spc import ConfigError, Reading, ReadingError
 from monitor.topics import matches
@@ -913,3 +916,95 @@ def test_templates_with_different_placeholder_patterns_may_coexist() -> None:
     router = Router([("p/{a}-{a}", "x/{a}"), ("p/{a}-{b}", "y/{a}/{b}")])
     assert _ids(router, "x/7") == []  # p/7-7 could also come from the second template
     assert _ids(router, "y/7/8") == ["p/7-8"]
+
+
+# ---------------------------------------------------------------- the batch path as arrays
+
+
+def _outcome(read: Any, payload: bytes, mapping: PayloadMapping) -> tuple[str, object]:
+    try:
+        result = read(payload, mapping, NOW)
+    except PayloadError as error:
+        return "refused", (error.reason, error.position, str(error))
+    columns = result if isinstance(result, Columns) else Columns.of(result, mapping)
+    return "read", columns.decoded()
+
+
+def _same_as_decode(payload: bytes, mapping: PayloadMapping) -> None:
+    """decode_columns reads exactly what decode reads, and refuses with the same reason and words."""
+    expected = _outcome(decode, payload, mapping)
+    assert _outcome(decode_columns, payload, mapping) == expected
+    if expected[0] == "read":  # and Columns round-trips decode's readings
+        assert Columns.of(decode(payload, mapping, NOW), mapping).decoded() == decode(payload, mapping, NOW)
+
+
+FIELD_VALUES = (
+    st.floats(allow_nan=False, allow_infinity=False)
+    | st.integers(min_value=-(2**63), max_value=2**64 - 1)  # what JSON text orjson reads
+    | st.sampled_from([8.01, 1709294400, 1709294400123, 1e11, 7_289_654_400, 2**53, 2**53 + 1, 0, -1])
+    | SCALARS
+)
+READING = st.fixed_dictionaries(
+    {}, optional={"value": FIELD_VALUES, "ts": FIELD_VALUES, "seq": FIELD_VALUES, "n": FIELD_VALUES}
+)
+TIDY_READING = st.fixed_dictionaries(
+    {
+        "value": st.floats(-1e6, 1e6) | st.integers(-1000, 1000),
+        "ts": st.floats(1e9, 2e9) | st.integers(1_500_000_000_000, 1_800_000_000_000),
+        "seq": st.integers(-(2**63), 2**63 - 1),
+        "n": st.floats(0.5, 100) | st.integers(1, 100),
+    }
+)
+BATCH_MAPPINGS = [
+    ARRAY,
+    ARRAY_FULL,
+    COLUMNS,
+    COLUMNS_FULL,
+    PayloadMapping(format="json", batch="array", items="r", max_batch=3),
+]
+
+
+@PROPERTY
+@given(
+    readings=st.lists(TIDY_READING | READING, max_size=6),
+    mapping=st.sampled_from(BATCH_MAPPINGS),
+    bare=st.booleans(),
+)
+def test_batches_read_as_arrays_are_the_readings_decode_reads(
+    readings: list[dict[str, object]], mapping: PayloadMapping, bare: bool
+) -> None:
+    """Arrays, columns, bare values: the array path gives decode's readings or decode's refusal."""
+    if mapping.batch == "columns":
+        document: object = {key: [r.get(key) for r in readings] for key in ("value", "ts", "seq", "n")}
+    elif bare:
+        document = [r.get("value") for r in readings]
+    else:
+        document = readings
+    if mapping.items:
+        document = {mapping.items: document}
+    _same_as_decode(orjson.dumps(document), mapping)
+
+
+@PROPERTY
+@given(document=JSON_VALUES, mapping=st.sampled_from(MAPPINGS))
+def test_any_json_read_as_arrays_is_what_decode_reads(document: object, mapping: PayloadMapping) -> None:
+    _same_as_decode(orjson.dumps(document), mapping)
+
+
+def test_array_batches_of_plain_numbers_become_arrays(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The common batch: every field a plain number; milliseconds become seconds (read as
+    columns, without the reading-by-reading path)."""
+
+    def not_here(*args: object) -> None:
+        raise AssertionError("the reading-by-reading path was taken")
+
+    monkeypatch.setattr(ingest, "_readings", not_here)
+    payload = b'[{"value": 8, "ts": 1709294400500, "seq": 1, "n": 2}, {"value": 8.5, "ts": 1709294401, "seq": 2, "n": 3.5}]'
+    columns = decode_columns(payload, ARRAY_FULL, NOW)
+    assert columns.values.tolist() == [8.0, 8.5]
+    assert columns.times.tolist() == [1709294400.5, 1709294401.0]
+    assert columns.sequences is not None
+    assert columns.sequences.tolist() == [1, 2]
+    assert columns.exposures is not None
+    assert columns.exposures.tolist() == [2.0, 3.5]
+    assert len(decode_columns(b'{"value": [1, 2, 3], "ts": [1, 2, 3]}', COLUMNS, NOW)) == 3
