@@ -897,6 +897,31 @@ class AlertTracker:
             return []
         return [self._alert(AlertKind.REPEATED, subgroup_index, now_ms, ranked)]
 
+    def observe_quiet(self, first_index: int, last_index: int, *, now_ms: int) -> list[Alert]:
+        """:meth:`observe` for a stretch of charted subgroups without signals, in one call.
+
+        The same alerts and state as ``observe([], [], subgroup_index=i, now_ms=now_ms)`` for
+        each ``i`` from ``first_index`` to ``last_index``; only an open episode is walked
+        subgroup by subgroup (at most ``clear_after_subgroups`` of them).
+        """
+        if not (_is_int(first_index) and _is_int(last_index)):
+            raise ValueError(f"subgroup indices must be integers, got {first_index!r} and {last_index!r}")
+        if last_index < first_index:
+            return []
+        if self._last_index is not None and first_index <= self._last_index:
+            raise ValueError(
+                f"chart {self._chart_id!r}: subgroup {first_index} does not follow "
+                f"subgroup {self._last_index}"
+            )
+        alerts: list[Alert] = []
+        index = first_index
+        while index <= last_index and self._state is ChartState.OUT_OF_CONTROL:
+            alerts += self.observe([], [], subgroup_index=index, now_ms=now_ms)
+            index += 1
+        if index <= last_index:  # nothing open: a quiet subgroup only moves the index on
+            alerts += self.observe([], [], subgroup_index=last_index, now_ms=now_ms)
+        return alerts
+
     def _enter(self, state: ChartState, now_ms: int) -> None:
         if state is not self._state:
             self._state = state

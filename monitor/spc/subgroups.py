@@ -337,6 +337,47 @@ class CountSubgrouper:
         self._buffer = []
         return subgroup
 
+    def add_many(self, values: NDArray[np.float64], times: NDArray[np.float64]) -> SubgroupBatch:
+        """Add readings given as arrays (no exposures); return the subgroups they complete.
+
+        The same subgroups, in the same order, as :meth:`add` on each reading in turn, formed
+        by reshaping rather than one object per reading (exposures of readings still waiting
+        from :meth:`add` are not carried into the batch).
+
+        Examples:
+            >>> grouper = CountSubgrouper(size=2)
+            >>> grouper.add(Reading(1.0, time=10.0)) is None
+            True
+            >>> batch = grouper.add_many(np.array([3.0, 5.0, 7.0]), np.array([12.0, 11.0, 13.0]))
+            >>> batch.values.tolist(), batch.start.tolist(), batch.end.tolist(), grouper.pending
+            ([[1.0, 3.0], [5.0, 7.0]], [10.0, 11.0], [12.0, 13.0], 0)
+        """
+        if values.shape != times.shape or values.ndim != 1:
+            raise ReadingError(f"values {values.shape} and times {times.shape} must be 1-D of one length")
+        if not (np.isfinite(values).all() and np.isfinite(times).all()):
+            raise ReadingError("reading values and times must be finite")
+        size = self.size
+        waiting = self._buffer
+        if waiting:
+            values = np.concatenate([np.array([r.value for r in waiting]), values])
+            times = np.concatenate([np.array([r.time for r in waiting]), times])
+        count = values.shape[0] // size
+        used = count * size
+        if count == 0:
+            self._buffer = [
+                *waiting,
+                *map(Reading, values[len(waiting) :].tolist(), times[len(waiting) :].tolist()),
+            ]
+        else:  # the waiting readings (fewer than size) are all in the first subgroup
+            self._buffer = list(map(Reading, values[used:].tolist(), times[used:].tolist()))
+        block_times = times[:used].reshape(count, size)
+        return SubgroupBatch(
+            values=np.ascontiguousarray(values[:used].reshape(count, size)),
+            sizes=np.full(count, size, dtype=np.int64),
+            start=block_times.min(axis=1) if count else np.empty(0),
+            end=block_times.max(axis=1) if count else np.empty(0),
+        )
+
     def to_state(self) -> State:
         """Parameters and the partial subgroup as plain data."""
         state = header("count_subgrouper", _COUNT_SCHEMA)
