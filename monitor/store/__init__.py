@@ -10,8 +10,10 @@ from monitor.store.rows import (
     CommitBatch,
     LimitsRow,
     OutboxAlert,
+    Panel,
     SignalRow,
     StoredAck,
+    SubgroupBlock,
     SubgroupRow,
 )
 from monitor.store.store import Store, StoreError, sqlite_url_next_to
@@ -21,10 +23,12 @@ __all__ = [
     "CommitBatch",
     "LimitsRow",
     "OutboxAlert",
+    "Panel",
     "SignalRow",
     "Store",
     "StoreError",
     "StoredAck",
+    "SubgroupBlock",
     "SubgroupRow",
     "sqlite_url_next_to",
 ]

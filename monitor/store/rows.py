@@ -7,9 +7,23 @@ floats, integers, booleans and ``None``.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
-__all__ = ["AlertRow", "CommitBatch", "LimitsRow", "OutboxAlert", "SignalRow", "StoredAck", "SubgroupRow"]
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = [
+    "AlertRow",
+    "CommitBatch",
+    "LimitsRow",
+    "OutboxAlert",
+    "Panel",
+    "SignalRow",
+    "StoredAck",
+    "SubgroupBlock",
+    "SubgroupRow",
+]
 
 
 @dataclass(frozen=True)
@@ -30,6 +44,87 @@ class SubgroupRow:
     points: dict[str, object]
     values: tuple[float, ...] | None = None
     exposures: tuple[float, ...] | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class Panel:
+    """One plotted statistic over a block of subgroups: a point for each.
+
+    A NaN limit is a limit the point does not have; a NaN value, a subgroup without a point
+    on this panel (the first subgroup has no moving range).
+    """
+
+    kind: str
+    statistic: str
+    value: NDArray[np.float64]
+    center: NDArray[np.float64]
+    lower: NDArray[np.float64]
+    upper: NDArray[np.float64]
+
+
+@dataclass(frozen=True, eq=False)
+class SubgroupBlock:
+    """Consecutive subgroups of one chart, all of ``n`` readings, as arrays (the batch path).
+
+    Stored as the rows :meth:`rows` lists, without an object per subgroup on the way.
+
+    Examples:
+        >>> import numpy as np
+        >>> two = np.full(2, 1.0)
+        >>> mean = Panel("xbar_r", "mean", np.array([8.0, 8.5]), 8.0 * two, 7.9 * two, np.nan * two)
+        >>> block = SubgroupBlock("press/thickness", 7, np.array([1.0, 3.0]), np.array([2.0, 4.0]),
+        ...                       np.array([[7.9, 8.1], [8.4, 8.6]]), (mean,))
+        >>> block.rows()[1]  # doctest: +NORMALIZE_WHITESPACE
+        SubgroupRow(chart='press/thickness', index=8, start_ms=3000, end_ms=4000, n=2,
+            points={'xbar_r': {'mean': {'value': 8.5, 'center': 8.0, 'lower': 7.9, 'upper': None}}},
+            values=(8.4, 8.6), exposures=None)
+    """
+
+    chart: str
+    first_index: int
+    start: NDArray[np.float64]
+    """Event time of each subgroup's first reading, seconds since the epoch."""
+    end: NDArray[np.float64]
+    values: NDArray[np.float64]
+    """The readings, one row per subgroup."""
+    panels: tuple[Panel, ...]
+
+    def __len__(self) -> int:
+        """Number of subgroups."""
+        return int(self.values.shape[0])
+
+    def rows(self) -> list[SubgroupRow]:
+        """The block as one :class:`SubgroupRow` per subgroup."""
+        out = []
+        for i, readings in enumerate(self.values.tolist()):
+            points: dict[str, object] = {}
+            for p in self.panels:
+                if math.isnan(p.value[i]):
+                    continue
+                by_statistic = points.setdefault(p.kind, {})
+                by_statistic[p.statistic] = {  # type: ignore[index]
+                    "value": float(p.value[i]),
+                    "center": float(p.center[i]),
+                    "lower": _or_none(float(p.lower[i])),
+                    "upper": _or_none(float(p.upper[i])),
+                }
+            start, end = float(self.start[i]), float(self.end[i])
+            out.append(
+                SubgroupRow(
+                    self.chart,
+                    self.first_index + i,
+                    round(start * 1000),
+                    round(end * 1000),
+                    len(readings),
+                    points,
+                    tuple(readings),
+                )
+            )
+        return out
+
+
+def _or_none(value: float) -> float | None:
+    return None if math.isnan(value) else value
 
 
 @dataclass(frozen=True)
@@ -85,6 +180,8 @@ class CommitBatch:
     """
 
     subgroups: list[SubgroupRow] = field(default_factory=list)
+    blocks: list[SubgroupBlock] = field(default_factory=list)
+    """More subgroups, stored like ``subgroups``."""
     signals: list[SignalRow] = field(default_factory=list)
     alerts: list[AlertRow] = field(default_factory=list)
     limits: list[LimitsRow] = field(default_factory=list)

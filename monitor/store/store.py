@@ -19,19 +19,23 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import itertools
 import json
 import operator
 import time
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
+from functools import lru_cache
 from pathlib import Path
 from typing import Any, Self, TypeVar
 
+import numpy as np
 import orjson
 from alembic import command
 from alembic.config import Config
 from alembic.util import CommandError
+from numpy.typing import NDArray
 from sqlalchemy import (
     JSON,
     Connection,
@@ -66,6 +70,7 @@ from monitor.store.rows import (
     OutboxAlert,
     SignalRow,
     StoredAck,
+    SubgroupBlock,
     SubgroupRow,
 )
 
@@ -312,6 +317,7 @@ class Store:
         names = {
             row.chart for rows in (batch.subgroups, batch.signals, batch.alerts, batch.limits) for row in rows
         }
+        names.update(block.chart for block in batch.blocks)
         names.update(batch.checkpoints)
         new_names = sorted(names - self._known_charts)
         try:
@@ -319,6 +325,7 @@ class Store:
                 writes.run(conn, "charts", [{"chart": name, "first_seen_ms": now} for name in new_names])
                 writes.run(conn, "limits", [_limits_values(row) for row in batch.limits])
                 writes.run(conn, "subgroups", [_subgroup_values(row) for row in batch.subgroups])
+                writes.blocks(conn, batch.blocks)
                 writes.run(conn, "alerts", [_alert_values(row) for row in batch.alerts])
                 writes.run(conn, "signals", [_signal_values(row, now) for row in batch.signals])
                 checkpoints = sorted(batch.checkpoints.items())
@@ -639,6 +646,29 @@ class _Writes:
         else:
             conn.exec_driver_sql(sql, rows)
 
+    def blocks(self, conn: Connection, blocks: list[SubgroupBlock]) -> None:
+        """Insert the subgroups of blocks, their JSON columns written from the arrays at once."""
+        if not blocks:
+            return
+        sql, names, positional, _ = self._statements["subgroups"]
+        rows: list[tuple[object, ...]] = []
+        for block in blocks:
+            if any(np.isnan(panel.value).any() for panel in block.panels):  # points missing: row by row
+                for row in block.rows():
+                    values = _subgroup_values(row)
+                    values["points"] = _json_text(values["points"])
+                    values["readings"] = _json_text(values["readings"])
+                    rows.append(tuple(values[c] for c in _WRITTEN["subgroups"]))
+            else:
+                rows.extend(_block_rows(block))
+        order = [_WRITTEN["subgroups"].index(c) for c in names]
+        if positional:
+            conn.exec_driver_sql(sql, [tuple(row[i] for i in order) for row in rows])
+        else:
+            conn.exec_driver_sql(
+                sql, [{c: row[i] for c, i in zip(names, order, strict=True)} for row in rows]
+            )
+
     def _add(self, table: Table, statement: Insert, dialect: Dialect) -> None:
         compiled = statement.compile(dialect=dialect)
         order = tuple(compiled.positiontup or ())
@@ -703,6 +733,66 @@ def _subgroup_row(r: Row[Any]) -> SubgroupRow:
         None if values is None else tuple(float(v) for v in values),
         None if exposures is None else tuple(float(v) for v in exposures),
     )
+
+
+def _block_rows(block: SubgroupBlock) -> list[tuple[object, ...]]:
+    """The rows of a block whose panels have a point for every subgroup, in ``_WRITTEN`` order.
+
+    The same values and JSON as :func:`_subgroup_values` gives for ``block.rows()``, with the
+    JSON text of every row made from one encoding per array.
+    """
+    count = len(block)
+    template = _points_template(tuple((panel.kind, panel.statistic) for panel in block.panels))
+    numbers = [
+        _number_texts(array)
+        for panel in block.panels
+        for array in (panel.value, panel.center, panel.lower, panel.upper)
+    ]
+    points = [template % texts for texts in zip(*numbers, strict=True)]
+    readings = [
+        f'{{"values":[{texts}],"exposures":null}}' for texts in _json_numpy(block.values)[2:-2].split("],[")
+    ]
+    start_ms = np.round(block.start * 1000.0).astype(np.int64).tolist()
+    end_ms = np.round(block.end * 1000.0).astype(np.int64).tolist()
+    first, n = block.first_index, int(block.values.shape[1])
+    return list(
+        zip(
+            itertools.repeat(block.chart, count),
+            range(first, first + count),
+            start_ms,
+            end_ms,
+            itertools.repeat(n, count),
+            points,
+            readings,
+            strict=False,
+        )
+    )
+
+
+@lru_cache(maxsize=64)
+def _points_template(panels: tuple[tuple[str, str], ...]) -> str:
+    """The JSON of a subgroup's points with ``%s`` for each number (value, center, lower, upper)."""
+    kinds: dict[str, list[str]] = {}
+    for kind, statistic in panels:
+        point = ",".join(f'"{name}":%s' for name in ("value", "center", "lower", "upper"))
+        kinds.setdefault(kind, []).append(f"{_json_key(statistic)}:{{{point}}}")
+    return "{" + ",".join(f"{_json_key(kind)}:{{{','.join(stats)}}}" for kind, stats in kinds.items()) + "}"
+
+
+def _json_key(name: str) -> str:
+    return orjson.dumps(name).decode().replace("%", "%%")
+
+
+def _json_numpy(array: NDArray[np.float64]) -> str:
+    """An array as JSON text (orjson: shortest round-trip numbers, NaN as null)."""
+    return orjson.dumps(
+        np.ascontiguousarray(array, dtype=np.float64), option=orjson.OPT_SERIALIZE_NUMPY
+    ).decode()
+
+
+def _number_texts(array: NDArray[np.float64]) -> list[str]:
+    """Each number of a 1-D array as JSON text."""
+    return _json_numpy(array)[1:-1].split(",")
 
 
 def _subgroup_values(row: SubgroupRow) -> dict[str, object]:

@@ -7,9 +7,10 @@ import math
 import sqlite3
 from dataclasses import replace
 
+import numpy as np
 import pytest
 
-from monitor.store import CommitBatch, LimitsRow, Store, StoreError, SubgroupRow, schema
+from monitor.store import CommitBatch, LimitsRow, Panel, Store, StoreError, SubgroupBlock, SubgroupRow, schema
 from monitor.store.store import WAL_CHECKPOINT_EVERY
 from tests.store.samples import T0, alert, full_batch, limits, signal, subgroup
 
@@ -191,3 +192,38 @@ async def test_sqlite_keeps_its_write_ahead_log_bounded_and_folds_it_in_at_close
     assert not wal.exists() or wal.stat().st_size == 0
     with sqlite3.connect(path) as db:
         assert db.execute("select count(*) from subgroups").fetchone() == (30 * WAL_CHECKPOINT_EVERY,)
+
+
+def _block(chart: str, first: int, *, missing_first: bool = False) -> SubgroupBlock:
+    rng = np.random.default_rng(first)
+    count = 6
+    values = np.round(rng.normal(8.0, 0.04, size=(count, 4)), 4)
+    starts = T0 / 1000.0 + np.arange(count) * 2.0005
+    tail = np.full(count, np.nan)  # a limit the panel does not have
+    mean = Panel(
+        "xbar_s", "mean", values.mean(axis=1), np.full(count, 8.0), np.full(count, 7.94), np.full(count, 8.06)
+    )
+    spread = values.std(axis=1, ddof=1)
+    if missing_first:
+        spread[0] = np.nan
+    sd = Panel("xbar_s", "sd", spread, np.full(count, 0.037), tail, np.full(count, 0.083))
+    cusum = Panel(
+        "cusum", "cusum_upper", rng.random(count) * 1e-7, np.zeros(count), tail, np.full(count, 5.0)
+    )
+    return SubgroupBlock(chart, first, starts, starts + 1.5, values, (mean, sd, cusum))
+
+
+@pytest.mark.parametrize("missing_first", [False, True])
+async def test_a_block_of_subgroups_reads_back_as_its_rows(store, missing_first):
+    """Subgroups written as arrays are the rows the block stands for, JSON and times exact
+    (the row-by-row writing is the reference; a NaN value is a panel without that point)."""
+    block = _block("press-1/bore", 3, missing_first=missing_first)
+    await store.commit(
+        CommitBatch(subgroups=[subgroup("press-1/bore", 0)], blocks=[block, _block("press-1/bore", 9)])
+    )
+    expected = [subgroup("press-1/bore", 0), *block.rows(), *_block("press-1/bore", 9).rows()]
+    got = await store.subgroups_for("press-1/bore")
+    assert [r.index for r in got] == [0, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14]
+    assert got == expected
+    assert ("sd" in got[1].points["xbar_s"]) is not missing_first
+    assert got[1].points["cusum"]["cusum_upper"]["lower"] is None
