@@ -24,6 +24,7 @@ import bisect
 import contextlib
 import gc
 import hashlib
+import importlib
 import math
 import os
 import re
@@ -34,9 +35,11 @@ from collections import Counter, OrderedDict, deque
 from collections.abc import Awaitable, Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TypeVar
+from typing import Any, TypeVar
 
+import numpy as np
 import orjson
+from numpy.typing import NDArray
 
 from monitor import sdnotify
 from monitor.alerts import (
@@ -59,12 +62,13 @@ from monitor.health import (
     Readiness,
     ReadinessLimits,
 )
-from monitor.ingest import Decoded, PayloadError, PayloadMapping, Router, decode
+from monitor.ingest import Columns, Decoded, PayloadError, PayloadMapping, Router, decode, decode_columns
 from monitor.logs import get_logger
 from monitor.mqtt import BrokerSettings, Incoming, MqttLink, PublishError, TlsSettings
 from monitor.sharding import owns, shard_client_id, shard_from_environment
 from monitor.signal_pvalues import ChartPValues, LawWorkshop, shared_workshop
 from monitor.spc import (
+    ChartKind,
     ChartSet,
     ChartSpec,
     ConfigError,
@@ -76,17 +80,22 @@ from monitor.spc import (
     Signal,
     State,
     StateError,
+    Statistic,
     Subgroup,
+    SubgroupBatch,
+    Trace,
     WindowSubgrouper,
 )
 from monitor.store import (
     AlertRow,
     CommitBatch,
     LimitsRow,
+    Panel,
     SignalRow,
     Store,
     StoredAck,
     StoreError,
+    SubgroupBlock,
     SubgroupRow,
 )
 from monitor.topics import minimal_filters
@@ -166,19 +175,18 @@ class RedeliveryGuard:
         self._previous: list[tuple[str, int, str]] = []
 
     @staticmethod
-    def identity(message: Incoming) -> tuple[str, int, str]:
-        """What identifies a re-sent message."""
-        return (message.topic, message.mid, _digest(message.payload))
+    def identity(message: Incoming) -> tuple[str, int, str] | None:
+        """What identifies a re-sent message (None for QoS 0: never re-sent)."""
+        return None if message.qos == 0 else (message.topic, message.mid, _digest(message.payload))
 
-    def seen(self, message: Incoming) -> bool:
-        """Whether this message's content was committed already."""
-        return message.qos > 0 and self.identity(message) in self._seen
+    def seen(self, key: tuple[str, int, str] | None) -> bool:
+        """Whether the message of this identity was committed already."""
+        return key is not None and key in self._seen
 
-    def remember(self, message: Incoming) -> None:
-        """Note a message whose content is in the batch being committed."""
-        if message.qos == 0:
+    def remember(self, key: tuple[str, int, str] | None) -> None:
+        """Note a message (by identity) whose content is in the batch being committed."""
+        if key is None:
             return
-        key = self.identity(message)
         self._seen[key] = None
         self._recent.append(key)
         while len(self._seen) > self.limit:
@@ -278,6 +286,31 @@ class SequenceTracker:
         self.gaps[at : at + 1] = parts
         return True
 
+    def accept_many(self, sequences: NDArray[Any]) -> NDArray[np.bool_]:
+        """:meth:`accept` for each number in turn; a run that continues the highest is one step.
+
+        Examples:
+            >>> tracker = SequenceTracker()
+            >>> tracker.accept_many(np.array([1, 2, 3])).tolist()
+            [True, True, True]
+            >>> tracker.accept_many(np.array([4, 5, 3])).tolist()
+            [True, True, False]
+        """
+        count = sequences.shape[0]
+        highest = self.highest
+        if (
+            count
+            and highest is not None
+            and sequences.dtype == np.int64
+            and int(sequences[0]) == highest + 1
+            and (count == 1 or bool((np.diff(sequences) == 1).all()))
+            and len(self.gaps) <= self.MAX_GAPS
+            and (not self.gaps or self.gaps[0][1] >= int(sequences[-1]) - self.WINDOW)
+        ):  # no gap opens, none falls out of the window: only the highest moves
+            self.highest = int(sequences[-1])
+            return np.ones(count, dtype=bool)
+        return np.array([self.accept(int(s)) for s in sequences.tolist()], dtype=bool)
+
     def to_state(self) -> dict[str, object]:
         """As plain data."""
         return {"highest": self.highest, "gaps": [list(gap) for gap in self.gaps]}
@@ -314,6 +347,7 @@ class ChartOutput:
     """What feeding readings to charts produced, waiting to be committed."""
 
     subgroups: list[SubgroupRow] = field(default_factory=list)
+    blocks: list[SubgroupBlock] = field(default_factory=list)
     signals: list[SignalRow] = field(default_factory=list)
     alerts: list[Alert] = field(default_factory=list)
     limits: list[LimitsRow] = field(default_factory=list)
@@ -324,12 +358,14 @@ class ChangeWatch:
     """The charts with something to do, so that no pass of the daemon visits every chart.
 
     ``dirty``: a checkpoint to commit; ``status``: a retained state to publish; ``timed``:
-    charts that must be visited as time passes (time windows, a parent being fitted).
+    charts that must be visited as time passes (time windows, a parent being fitted);
+    ``holding``: charts holding batch readings to chart in one pass before the next commit.
     """
 
     dirty: set[ChartRuntime] = field(default_factory=set)
     status: set[ChartRuntime] = field(default_factory=set)
     timed: set[ChartRuntime] = field(default_factory=set)
+    holding: set[ChartRuntime] = field(default_factory=set)
 
     def register(self, runtime: ChartRuntime) -> None:
         """Watch this chart from now on (what it already has to do included)."""
@@ -385,6 +421,7 @@ class ChartRuntime:
         self._window_start = 0.0
         self._window_count = 0
         self._flood_noted = False
+        self._held: list[tuple[NDArray[np.float64], NDArray[np.float64]]] = []
         self.dirty = True
         self.status_dirty = True
         self.p_values.prepare(self.chart_set.parameters, self.typical_n)
@@ -545,15 +582,32 @@ class ChartRuntime:
         """False if this topic already had a reading with this sequence number (a duplicate)."""
         if decoded.sequence is None:
             return True
+        if self.sequence_tracker(topic).accept(decoded.sequence):
+            return True
+        self.duplicates += 1
+        return False
+
+    def sequence_tracker(self, topic: str) -> SequenceTracker:
+        """The sequence numbers seen on this topic (the 10,000 most recent topics are kept)."""
         tracker = self.sequences.get(topic)
         if tracker is None:
             tracker = self.sequences[topic] = SequenceTracker()
             if len(self.sequences) > 10_000:
                 self.sequences.pop(next(iter(self.sequences)))
-        if tracker.accept(decoded.sequence):
-            return True
-        self.duplicates += 1
-        return False
+        return tracker
+
+    def refused_times(self, times: NDArray[np.float64], received_at: float) -> NDArray[np.bool_] | None:
+        """Where :meth:`event_time` refuses or replaces a time (None: nowhere), for a batch."""
+        policy = self.config.timestamps
+        if policy.max_ahead is None and policy.max_behind is None:
+            return None
+        ahead = times - received_at
+        outside = np.zeros(times.shape[0], dtype=bool)
+        if policy.max_ahead is not None:
+            outside |= ahead > policy.max_ahead
+        if policy.max_behind is not None:
+            outside |= -ahead > policy.max_behind
+        return outside if outside.any() else None
 
     def event_time(self, decoded: Decoded, received_at: float) -> float | None:
         """The reading's event time under the chart's timestamp policy (None: refused)."""
@@ -587,8 +641,9 @@ class ChartRuntime:
             return True
         return False
 
-    def feed(self, readings: list[Reading], now_ms: int, out: ChartOutput) -> None:
-        """Add readings; charts every subgroup they complete."""
+    def feed(self, readings: list[Reading], now_ms: int, out: ChartOutput) -> int:
+        """Add readings; charts every subgroup they complete; returns how many that is."""
+        charted = self.chart_held(now_ms, out) if self._held else 0  # batch readings that came first
         self.readings += len(readings)  # readings carried over were counted when they came
         if self.carried:
             readings, self.carried = [*self.carried, *readings], []
@@ -599,6 +654,98 @@ class ChartRuntime:
                 continue
             for subgroup in [made] if isinstance(made, Subgroup) else made:
                 self._chart(subgroup, now_ms, out)
+                charted += 1
+        return charted
+
+    @property
+    def batches(self) -> bool:
+        """Whether readings may be held and charted as arrays.
+
+        So they may for count subgroups, limits in place, a variables chart and no readings
+        carried over from an older subgrouping.
+        """
+        return (
+            isinstance(self.grouper, CountSubgrouper)
+            and self.chart_set.monitoring
+            and self.spec.attribute is None
+            and not self.carried
+        )
+
+    def hold(self, values: NDArray[np.float64], times: NDArray[np.float64]) -> None:
+        """Keep readings of a batch (see :attr:`batches`) for :meth:`chart_held`."""
+        self.readings += values.shape[0]
+        self._held.append((values, times))
+        self.dirty = True
+        if self.watch is not None:
+            self.watch.holding.add(self)
+
+    def chart_held(self, now_ms: int, out: ChartOutput) -> int:
+        """Chart the held readings in one vectorised pass; returns the number of subgroups.
+
+        The rows, signals and alerts are those that :meth:`feed` would give reading by reading.
+        """
+        held, self._held = self._held, []
+        if not held:
+            return 0
+        values = held[0][0] if len(held) == 1 else np.concatenate([v for v, _ in held])
+        times = held[0][1] if len(held) == 1 else np.concatenate([t for _, t in held])
+        grouper = self.grouper
+        if not isinstance(grouper, CountSubgrouper) or not self.chart_set.monitoring:  # settings changed
+            self.readings -= values.shape[0]
+            return self.feed(list(map(Reading, values.tolist(), times.tolist())), now_ms, out)
+        batch = grouper.add_many(values, times)
+        count = len(batch)
+        if count == 0:
+            return 0
+        chart_set = self.chart_set
+        first = chart_set.next_index
+        result = chart_set.update_many(batch)
+        if self.limits_version == 0 or self.new_settings:
+            self.new_settings = False
+            self._new_limits(now_ms, out)
+        self._batch_rows(batch, first, result.traces, out)
+        signals = result.signals
+        if not signals:
+            cleared = self.tracker.observe_quiet(first, first + count - 1, now_ms=now_ms)
+            if cleared:
+                self.status_dirty = True
+                out.alerts.extend(cleared)
+            return count
+        self.status_dirty = True
+        quiet_from = first
+        start = 0
+        while start < len(signals):
+            index = signals[start].subgroup
+            stop = start + 1
+            while stop < len(signals) and signals[stop].subgroup == index:
+                stop += 1
+            out.alerts.extend(self.tracker.observe_quiet(quiet_from, index - 1, now_ms=now_ms))
+            self._signalled(list(signals[start:stop]), batch.subgroup(index - first), index, now_ms, out)
+            quiet_from, start = index + 1, stop
+        out.alerts.extend(self.tracker.observe_quiet(quiet_from, first + count - 1, now_ms=now_ms))
+        return count
+
+    def _batch_rows(
+        self,
+        batch: SubgroupBatch,
+        first: int,
+        traces: Mapping[ChartKind, Mapping[Statistic, Trace]],
+        out: ChartOutput,
+    ) -> None:
+        """The stored rows of a batch of subgroups, as one block of arrays."""
+        count = len(batch)
+        panels = []
+        for kind, trace_of in traces.items():
+            for statistic, trace in trace_of.items():
+                arrays = [trace.value, trace.center, trace.lower, trace.upper]
+                if len(trace) != count:  # a panel without a point for some subgroups (the first moving range)
+                    arrays = [_spread(a, trace.subgroup - first, count) for a in arrays]
+                panels.append(Panel(kind.value, statistic.value, *arrays))
+        if batch.start is None or batch.end is None:  # pragma: no cover - count subgroups have times
+            raise RuntimeError("a batch of readings without times")
+        out.blocks.append(
+            SubgroupBlock(self.chart_id, first, batch.start, batch.end, batch.values, tuple(panels))
+        )
 
     def advance(self, now: float, out: ChartOutput) -> bool:
         """Close the time windows whose end (plus lateness) has passed; True if a parent was just fitted."""
@@ -661,6 +808,12 @@ class ChartRuntime:
                 exposures=exposures,
             )
         )
+        self._signalled(signals, subgroup, index, now_ms, out)
+
+    def _signalled(
+        self, signals: list[Signal], subgroup: Subgroup, index: int, now_ms: int, out: ChartOutput
+    ) -> None:
+        """A charted subgroup's signals (often none) through the alert tracker, and their rows."""
         contexts = [self._context(s, subgroup) for s in signals]
         alerts = self.tracker.observe(signals, contexts, subgroup_index=index, now_ms=now_ms)
         if alerts or signals:
@@ -772,10 +925,12 @@ class ChartRuntime:
 class _Pending:
     output: ChartOutput = field(default_factory=ChartOutput)
     messages: list[Incoming] = field(default_factory=list)
+    identities: list[tuple[str, int, str] | None] = field(default_factory=list)
+    """Of the handled messages, for the redelivery guard (the digest is taken once)."""
 
     def empty(self) -> bool:
         o = self.output
-        return not (self.messages or o.subgroups or o.signals or o.alerts or o.limits)
+        return not (self.messages or o.subgroups or o.blocks or o.signals or o.alerts or o.limits)
 
 
 @dataclass(slots=True)
@@ -976,7 +1131,9 @@ class Daemon:
         """Process one chart message into pending output (nothing is committed here)."""
         self.stats.messages += 1
         pending.messages.append(message)
-        if self.guard.seen(message):
+        identity = self.guard.identity(message)
+        pending.identities.append(identity)
+        if self.guard.seen(identity):
             self.stats.duplicate_messages += 1
             self.metrics.count_duplicate("message")
             _log.info("message_duplicated", topic=message.topic, mid=message.mid)
@@ -996,17 +1153,22 @@ class Daemon:
             self.stats.unrouted += 1
             return
         now_ms = _now_ms()
-        decoded_by_mapping: dict[PayloadMapping, list[Decoded] | PayloadError] = {}
+        out = pending.output
+        decoded_by_mapping: dict[PayloadMapping, list[Decoded] | Columns | PayloadError] = {}
         for route in routes:
             template = self.templates[route.template_id]
             runtime = self.runtime(route.chart_id, template)
-            decoded = decoded_by_mapping.get(runtime.mapping)
+            mapping = runtime.mapping
+            decoded = decoded_by_mapping.get(mapping)
             if decoded is None:
                 try:
-                    decoded = decode(message.payload, runtime.mapping, message.received_at)
+                    if mapping.batch == "none":
+                        decoded = decode(message.payload, mapping, message.received_at)
+                    else:
+                        decoded = decode_columns(message.payload, mapping, message.received_at)
                 except PayloadError as exc:
                     decoded = exc
-                decoded_by_mapping[runtime.mapping] = decoded
+                decoded_by_mapping[mapping] = decoded
             if isinstance(decoded, PayloadError):
                 self.stats.rejected[decoded.reason] += 1
                 self.metrics.count_decode_error(decoded.reason)
@@ -1019,33 +1181,14 @@ class Daemon:
                 )
                 self._dead_letter(message, route.chart_id, decoded.reason, decoded.detail)
                 continue
-            readings = []
-            for item in decoded:
-                if not runtime.accept_sequence(message.topic, item):
-                    self.stats.duplicate_readings += 1
-                    self.metrics.count_duplicate("reading")
-                    continue
-                moment = runtime.event_time(item, message.received_at)
-                if moment is None:
-                    reason = (
-                        "time_too_far_ahead" if item.time > message.received_at else "time_too_far_behind"
-                    )
-                    self.stats.rejected[reason] += 1
-                    self.metrics.count_decode_error(reason)
-                    _log.warning(
-                        "reading_rejected",
-                        chart=route.chart_id,
-                        topic=message.topic,
-                        reason=reason,
-                        detail=f"event time {item.time:.3f} against receive time {message.received_at:.3f}",
-                    )
-                    continue
-                readings.append(Reading(item.value, moment, item.exposure))
-            self.stats.readings += len(readings)
-            before = len(pending.output.subgroups)
-            runtime.feed(readings, now_ms, pending.output)
-            self.stats.subgroups += len(pending.output.subgroups) - before
-            if runtime.note_rate(len(readings), message.received_at):
+            if isinstance(decoded, Columns):
+                count = self._take_columns(message, route.chart_id, runtime, decoded, now_ms, out)
+            else:
+                readings = self._take_readings(message, route.chart_id, runtime, decoded)
+                count = len(readings)
+                self.stats.readings += count
+                self.stats.subgroups += runtime.feed(readings, now_ms, out)
+            if runtime.note_rate(count, message.received_at):
                 self.stats.floods += 1
                 _log.warning(
                     "topic_flooded",
@@ -1053,6 +1196,91 @@ class Daemon:
                     readings_per_minute=runtime.last_minute_readings,
                     expected_per_minute=runtime.expected_per_minute,
                 )
+
+    def _take_readings(
+        self, message: Incoming, chart_id: str, runtime: ChartRuntime, decoded: list[Decoded]
+    ) -> list[Reading]:
+        """The readings of a message for one chart: duplicates and refused times left out."""
+        readings = []
+        for item in decoded:
+            if not runtime.accept_sequence(message.topic, item):
+                self.stats.duplicate_readings += 1
+                self.metrics.count_duplicate("reading")
+                continue
+            moment = runtime.event_time(item, message.received_at)
+            if moment is None:
+                self._refuse_time(message, chart_id, item.time)
+                continue
+            readings.append(Reading(item.value, moment, item.exposure))
+        return readings
+
+    def _take_columns(
+        self,
+        message: Incoming,
+        chart_id: str,
+        runtime: ChartRuntime,
+        columns: Columns,
+        now_ms: int,
+        out: ChartOutput,
+    ) -> int:
+        """A batch's readings for one chart, as arrays; returns how many were kept.
+
+        What :meth:`_take_readings` would keep is held for one vectorised pass before the
+        commit (or fed at once where the chart takes no arrays).
+        """
+        values, times, exposures = columns.values, columns.times, columns.exposures
+        keep: NDArray[np.bool_] | None = None
+        if columns.sequences is not None:
+            accepted = runtime.sequence_tracker(message.topic).accept_many(columns.sequences)
+            if not accepted.all():
+                keep = accepted
+                dropped = int((~accepted).sum())
+                runtime.duplicates += dropped
+                self.stats.duplicate_readings += dropped
+                self.metrics.count_duplicate("reading", dropped)
+        outside = runtime.refused_times(times, message.received_at)
+        if outside is not None:
+            if runtime.config.timestamps.outside == "receive_time":
+                times = np.where(outside, message.received_at, times)
+            else:
+                refused = outside if keep is None else outside & keep
+                for i in np.flatnonzero(refused).tolist():
+                    self._refuse_time(message, chart_id, float(times[i]))
+                keep = ~outside if keep is None else keep & ~outside
+        if keep is not None:
+            values, times = values[keep], times[keep]
+            exposures = None if exposures is None else exposures[keep]
+        count = int(values.shape[0])
+        self.stats.readings += count
+        if count and runtime.batches:
+            runtime.hold(values, times)
+        elif count:
+            weights = [None] * count if exposures is None else exposures.tolist()
+            readings = list(map(Reading, values.tolist(), times.tolist(), weights))
+            self.stats.subgroups += runtime.feed(readings, now_ms, out)
+        return count
+
+    def chart_held(self, out: ChartOutput) -> None:
+        """Chart the batch readings every chart holds (before a commit, or new limits)."""
+        holding = self.watch.holding
+        if not holding:
+            return
+        now_ms = _now_ms()
+        for runtime in holding:
+            self.stats.subgroups += runtime.chart_held(now_ms, out)
+        holding.clear()
+
+    def _refuse_time(self, message: Incoming, chart_id: str, moment: float) -> None:
+        reason = "time_too_far_ahead" if moment > message.received_at else "time_too_far_behind"
+        self.stats.rejected[reason] += 1
+        self.metrics.count_decode_error(reason)
+        _log.warning(
+            "reading_rejected",
+            chart=chart_id,
+            topic=message.topic,
+            reason=reason,
+            detail=f"event time {moment:.3f} against receive time {message.received_at:.3f}",
+        )
 
     def _dead_letter(self, message: Incoming, chart_id: str | None, reason: str, detail: str) -> None:
         """Keep a copy of a refused message for the dead-letter topic (when configured; bounded)."""
@@ -1156,8 +1384,9 @@ class Daemon:
         handling messages while the store works (the next batch's changes mark the charts
         dirty again and go into the next transaction).
         """
-        for message in pending.messages:
-            self.guard.remember(message)
+        self.chart_held(pending.output)
+        for identity in pending.identities:
+            self.guard.remember(identity)
         self._count_handled()
         dirty = list(self.watch.dirty)
         checkpoints = {rt.chart_id: rt.to_state() for rt in dirty}
@@ -1171,6 +1400,7 @@ class Daemon:
         sent, self._to_mark = self._to_mark, []
         batch = CommitBatch(
             subgroups=out.subgroups,
+            blocks=out.blocks,
             signals=out.signals,
             alerts=[AlertRow(a.id, a.chart_id, a.kind.value, a.created_ms, a.event) for a in out.alerts],
             limits=out.limits,
@@ -1306,6 +1536,7 @@ class Daemon:
                     self.watch.timed.discard(runtime)
             adopted = fitted  # a parent fitted to a baseline is checkpointed at once
             if self.store is not None and time.monotonic() - self._limits_checked >= self._limits_poll:
+                self.chart_held(pending.output)  # readings that came before new limits are judged by the old
                 adopted = await self._refresh_limits(self.store)
             due = (
                 adopted
@@ -1487,6 +1718,9 @@ class Daemon:
                 before = link_state.get("subscriptions")
                 if isinstance(before, list):
                     forget = [str(f) for f in before if f not in self.subscriptions]
+            if any(chart.payload.batch != "none" for chart in self.config.charts):
+                # the batch path's filters (scipy.signal, ~1 s to import) load now, not at the first batch
+                await asyncio.to_thread(importlib.import_module, "scipy.signal")
             for chart in self.config.charts:
                 if not chart.placeholders and self.owns(chart.id):
                     self.runtime(chart.id, chart)
@@ -1649,6 +1883,13 @@ class Daemon:
         _log.info(
             "config_reloaded", added=added, changed=changed, removed=removed, subscriptions=self.subscriptions
         )
+
+
+def _spread(array: NDArray[np.float64], at: NDArray[np.int64], count: int) -> NDArray[np.float64]:
+    """``array`` placed at positions ``at`` of ``count``, NaN elsewhere."""
+    out = np.full(count, np.nan)
+    out[at] = array
+    return out
 
 
 def _check_daemon_config(config: Config) -> None:
