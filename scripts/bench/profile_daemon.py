@@ -196,7 +196,7 @@ def main() -> None:
     parser.add_argument("--store", choices=["sqlite", "postgresql"], default="sqlite")
     parser.add_argument("--shape", choices=["single", "batch"], default="single")
     parser.add_argument(
-        "--messages", type=int, default=None, help="default 30000 single or 600 batch messages"
+        "--messages", type=int, default=None, help="default 30000 single or 6000 batch messages"
     )
     parser.add_argument("--rate", type=int, default=250, help="samples per second")
     parser.add_argument("--charts", type=int, default=0, help="many-charts scenario with this many charts")
@@ -205,7 +205,7 @@ def main() -> None:
     if args.summarise:
         print(summarise(args.summarise))
         return
-    messages = args.messages or (30_000 if args.shape == "single" else 600)
+    messages = args.messages or (30_000 if args.shape == "single" else 6000)
     VAR.mkdir(parents=True, exist_ok=True)
     name = f"charts{args.charts}" if args.charts else f"{args.store}-{args.shape}"
     out = VAR / f"profile-{name}.txt"
