@@ -607,6 +607,7 @@ class _Writes:
     """
 
     def __init__(self, dialect: Dialect) -> None:
+        self._copy = dialect.name == "postgresql"  # blocks of subgroups go in by COPY
         insert = postgresql.insert if dialect.name == "postgresql" else sqlite.insert
         self._statements: dict[str, tuple[str, tuple[str, ...], bool, frozenset[str]]] = {}
         for table, keys in (
@@ -661,12 +662,37 @@ class _Writes:
                     rows.append(tuple(values[c] for c in _WRITTEN["subgroups"]))
             else:
                 rows.extend(_block_rows(block))
+        if self._copy:
+            self._copy_subgroups(conn, rows)
+            return
         order = [_WRITTEN["subgroups"].index(c) for c in names]
         if positional:
             conn.exec_driver_sql(sql, [tuple(row[i] for i in order) for row in rows])
         else:
             conn.exec_driver_sql(
                 sql, [{c: row[i] for c, i in zip(names, order, strict=True)} for row in rows]
+            )
+
+    def _copy_subgroups(self, conn: Connection, rows: list[tuple[object, ...]]) -> None:
+        """PostgreSQL: COPY the rows into a session table emptied at commit, then INSERT them.
+
+        One INSERT of them all skips those already stored (COPY itself cannot skip conflicts).
+        """
+        columns = ", ".join(_WRITTEN["subgroups"])
+        driver = conn.connection.driver_connection
+        if driver is None:  # pragma: no cover - a pooled connection always has its driver's
+            raise RuntimeError("no driver connection")
+        with driver.cursor() as cursor:
+            cursor.execute(
+                "CREATE TEMPORARY TABLE IF NOT EXISTS subgroups_incoming "
+                "(LIKE subgroups INCLUDING DEFAULTS) ON COMMIT DELETE ROWS"
+            )
+            with cursor.copy(f"COPY subgroups_incoming ({columns}) FROM STDIN") as copy:
+                for row in rows:
+                    copy.write_row(row)
+            cursor.execute(  # (the column names are the constant _WRITTEN, never input)
+                f"INSERT INTO subgroups ({columns}) SELECT {columns} FROM subgroups_incoming "  # noqa: S608
+                "ON CONFLICT (chart, idx) DO NOTHING"
             )
 
     def _add(self, table: Table, statement: Insert, dialect: Dialect) -> None:

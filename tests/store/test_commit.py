@@ -225,5 +225,7 @@ async def test_a_block_of_subgroups_reads_back_as_its_rows(store, missing_first)
     got = await store.subgroups_for("press-1/bore")
     assert [r.index for r in got] == [0, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14]
     assert got == expected
+    await store.commit(CommitBatch(blocks=[block]))  # again, as after a crash before the acknowledgement
+    assert await store.subgroups_for("press-1/bore") == expected
     assert ("sd" in got[1].points["xbar_s"]) is not missing_first
     assert got[1].points["cusum"]["cusum_upper"]["lower"] is None
