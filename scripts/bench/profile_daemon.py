@@ -43,7 +43,8 @@ CATEGORIES: list[tuple[str, str, bool]] = [
     (
         "decode (orjson + mapping)",
         F
-        + r"(decode|_parse_json|_mapped|_array|_lookup|_number|_time|_sequence|_iso_seconds|_nesting)"
+        + r"(decode|_parse_json|_loads|_mapped|_array|_lookup|_number|_time|_sequence|_iso_seconds|_nesting"
+        + r"|decode_columns|_raw_columns|_fast_columns|_plain_floats)"
         + r" \(.*monitor/ingest\.py",
         False,
     ),
@@ -57,7 +58,11 @@ CATEGORIES: list[tuple[str, str, bool]] = [
     ("run rules", r"\(.*monitor/spc/rules\.py", False),
     ("p-values", F + r"(_context|p_value) \(.*monitor/(daemon|spc/pvalues)\.py", True),
     ("alert tracker + CloudEvents", r"\(.*monitor/alerts\.py", True),
-    ("subgroup/signal rows (points dicts)", F + r"_chart \(.*monitor/daemon\.py", False),
+    (
+        "subgroup/signal rows (points dicts)",
+        F + r"(_chart|_signalled|_batch_rows) \(.*monitor/daemon\.py",
+        False,
+    ),
     ("checkpoint state (to_state, guard)", F + r"(to_state|checkpoint|remember) \(.*monitor/", True),
     (
         "storage (SQLAlchemy, driver, store.py)",
