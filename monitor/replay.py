@@ -38,6 +38,7 @@ from scipy import special
 from monitor.config import ChartConfig, Config
 from monitor.spc import (
     ChartSet,
+    CountSubgrouper,
     PhaseOneEstimate,
     Reading,
     ReadingError,
@@ -344,18 +345,10 @@ def _count_batch(
     exposures: NDArray[np.float64] | None,
     report: ChartReplay,
 ) -> SubgroupBatch:
-    n = chart.subgroup.size or 1
-    m = values.shape[0] // n
-    report.pending = values.shape[0] - m * n
-    used = m * n
-    block_times = times[:used].reshape(m, n)
-    return SubgroupBatch.from_ragged(
-        values[:used],
-        np.full(m, n, dtype=np.int64),
-        exposures=None if exposures is None else exposures[:used],
-        start=block_times.min(axis=1),
-        end=block_times.max(axis=1),
-    )
+    grouper = CountSubgrouper(size=chart.subgroup.size or 1)
+    batch = grouper.add_many(values, times, exposures)
+    report.pending = grouper.pending
+    return batch
 
 
 def _window_batch(

@@ -337,12 +337,18 @@ class CountSubgrouper:
         self._buffer = []
         return subgroup
 
-    def add_many(self, values: NDArray[np.float64], times: NDArray[np.float64]) -> SubgroupBatch:
-        """Add readings given as arrays (no exposures); return the subgroups they complete.
+    def add_many(
+        self,
+        values: NDArray[np.float64],
+        times: NDArray[np.float64],
+        exposures: NDArray[np.float64] | None = None,
+    ) -> SubgroupBatch:
+        """Add readings given as arrays; return the subgroups they complete.
 
         The same subgroups, in the same order, as :meth:`add` on each reading in turn, formed
-        by reshaping rather than one object per reading (exposures of readings still waiting
-        from :meth:`add` are not carried into the batch).
+        by reshaping rather than one object per reading. With ``exposures`` every subgroup
+        has exposures (1 for a waiting reading without one, as :meth:`Subgroup.of` gives);
+        without, the batch has none.
 
         Examples:
             >>> grouper = CountSubgrouper(size=2)
@@ -354,28 +360,36 @@ class CountSubgrouper:
         """
         if values.shape != times.shape or values.ndim != 1:
             raise ReadingError(f"values {values.shape} and times {times.shape} must be 1-D of one length")
+        if exposures is not None and exposures.shape != values.shape:
+            raise ReadingError(f"{values.shape[0]} readings were given but {exposures.shape[0]} exposures")
         if not (np.isfinite(values).all() and np.isfinite(times).all()):
             raise ReadingError("reading values and times must be finite")
+        if exposures is not None and not (np.isfinite(exposures).all() and (exposures > 0).all()):
+            raise ReadingError("reading exposures must be positive")
         size = self.size
         waiting = self._buffer
         if waiting:
             values = np.concatenate([np.array([r.value for r in waiting]), values])
             times = np.concatenate([np.array([r.time for r in waiting]), times])
+            if exposures is not None:
+                earlier = [1.0 if r.exposure is None else r.exposure for r in waiting]
+                exposures = np.concatenate([np.array(earlier), exposures])
         count = values.shape[0] // size
         used = count * size
-        if count == 0:
-            self._buffer = [
-                *waiting,
-                *map(Reading, values[len(waiting) :].tolist(), times[len(waiting) :].tolist()),
-            ]
-        else:  # the waiting readings (fewer than size) are all in the first subgroup
-            self._buffer = list(map(Reading, values[used:].tolist(), times[used:].tolist()))
+        kept = slice(used if count else len(waiting), None)  # the new readings that wait
+        weights = [None] * (values.shape[0] - kept.start) if exposures is None else exposures[kept].tolist()
+        rest = list(map(Reading, values[kept].tolist(), times[kept].tolist(), weights))
+        # the readings that waited are all in the first subgroup, if there is one
+        self._buffer = rest if count else [*waiting, *rest]
         block_times = times[:used].reshape(count, size)
         return SubgroupBatch(
             values=np.ascontiguousarray(values[:used].reshape(count, size)),
             sizes=np.full(count, size, dtype=np.int64),
             start=block_times.min(axis=1) if count else np.empty(0),
             end=block_times.max(axis=1) if count else np.empty(0),
+            exposures=None
+            if exposures is None
+            else np.ascontiguousarray(exposures[:used].reshape(count, size)),
         )
 
     def to_state(self) -> State:

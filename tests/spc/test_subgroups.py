@@ -516,20 +516,25 @@ def test_a_slice_of_a_batch_holds_the_same_subgroups_as_the_batch(subgroups, beg
 @given(
     size=st.integers(min_value=1, max_value=6),
     chunks=st.lists(st.integers(min_value=0, max_value=13), min_size=1, max_size=8),
+    weighted=st.booleans(),
     data=st.data(),
 )
-def test_readings_added_as_arrays_form_the_subgroups_added_one_by_one(size, chunks, data):
-    """add_many reshapes what add would group (the streaming former is the reference),
-    carrying the partial subgroup across calls and across a checkpoint."""
+def test_readings_added_as_arrays_form_the_subgroups_added_one_by_one(size, chunks, weighted, data):
+    """add_many reshapes what add would group (the streaming former is the reference), with or
+    without exposures, carrying the partial subgroup across calls and across a checkpoint."""
     one, many = CountSubgrouper(size=size), CountSubgrouper(size=size)
     clock = 1_767_600_000.0
     for count in chunks:
         values = data.draw(st.lists(st.floats(-1e6, 1e6), min_size=count, max_size=count))
         times = [clock + data.draw(st.floats(0, 100)) for _ in range(count)]
-        expected = [
-            s for v, t in zip(values, times, strict=True) if (s := one.add(Reading(v, t))) is not None
-        ]
-        batch = many.add_many(np.array(values, dtype=float), np.array(times, dtype=float))
+        weights = [data.draw(st.floats(0.5, 50)) if weighted else None for _ in range(count)]
+        readings = [Reading(v, t, w) for v, t, w in zip(values, times, weights, strict=True)]
+        expected = [s for r in readings if (s := one.add(r)) is not None]
+        batch = many.add_many(
+            np.array(values, dtype=float),
+            np.array(times, dtype=float),
+            np.array(weights) if weighted else None,
+        )
         assert [batch.subgroup(i) for i in range(len(batch))] == expected
         assert many.to_state() == one.to_state()
         many = CountSubgrouper.from_state(many.to_state())
