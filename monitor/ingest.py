@@ -310,18 +310,6 @@ class Columns:
             None if mapping.exposure is None else np.array([r.exposure for r in readings], dtype=np.float64),
         )
 
-    def decoded(self) -> list[Decoded]:
-        """The readings as :class:`Decoded` tuples (what :func:`decode` returns)."""
-        count = len(self)
-        sequences = [None] * count if self.sequences is None else [int(s) for s in self.sequences.tolist()]
-        exposures = [None] * count if self.exposures is None else self.exposures.tolist()
-        return [
-            Decoded(value, time, sequence, exposure, position)
-            for position, (value, time, sequence, exposure) in enumerate(
-                zip(self.values.tolist(), self.times.tolist(), sequences, exposures, strict=True)
-            )
-        ]
-
 
 def decode_columns(payload: bytes, mapping: PayloadMapping, received_at: float) -> Columns:
     """:func:`decode` for batches, as arrays: the same readings, the same refusals.

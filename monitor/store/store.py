@@ -655,13 +655,11 @@ class _Writes:
         rows: list[tuple[object, ...]] = []
         for block in blocks:
             if any(np.isnan(panel.value).any() for panel in block.panels):  # points missing: row by row
-                for row in block.rows():
-                    values = _subgroup_values(row)
-                    values["points"] = _json_text(values["points"])
-                    values["readings"] = _json_text(values["readings"])
-                    rows.append(tuple(values[c] for c in _WRITTEN["subgroups"]))
+                self.run(conn, "subgroups", [_subgroup_values(row) for row in block.rows()])
             else:
                 rows.extend(_block_rows(block))
+        if not rows:
+            return
         if self._copy:
             self._copy_subgroups(conn, rows)
             return
